@@ -36,6 +36,7 @@ __all__ = [
     "loads_chain",
     "chain_to_dict",
     "dumps_chain",
+    "pretty_json",
     "save_chain",
     "atomic_write_text",
     "read_matrix_csv",
@@ -348,9 +349,43 @@ def chain_to_dict(chain: Chain) -> dict:
     return doc
 
 
+def pretty_json(obj: Any, *, indent: int = 2, width: int = 110) -> str:
+    """JSON text for people: two-space indent, but any object or list that
+    holds no nested containers and fits in ``width`` characters stays on one
+    line (a state, a transition, a matrix row).  Strict JSON, floats in full
+    precision, non-ASCII kept, trailing newline.
+    """
+
+    def flat(v: Any) -> bool:
+        if isinstance(v, dict):
+            return all(not isinstance(x, (dict, list)) for x in v.values())
+        if isinstance(v, list):
+            return all(not isinstance(x, (dict, list)) for x in v)
+        return True
+
+    def one_line(v: Any) -> str:
+        return json.dumps(v, ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
+
+    def render(v: Any, level: int) -> str:
+        pad = " " * (indent * level)
+        if not isinstance(v, (dict, list)) or not v:
+            return one_line(v)
+        text = one_line(v)
+        if flat(v) and len(text) + len(pad) <= width:
+            return text
+        inner = " " * (indent * (level + 1))
+        if isinstance(v, dict):
+            items = [f"{inner}{json.dumps(str(k), ensure_ascii=False)}: {render(x, level + 1)}" for k, x in v.items()]
+            return "{\n" + ",\n".join(items) + "\n" + pad + "}"
+        items = [f"{inner}{render(x, level + 1)}" for x in v]
+        return "[\n" + ",\n".join(items) + "\n" + pad + "]"
+
+    return render(obj, 0) + "\n"
+
+
 def dumps_chain(chain: Chain) -> str:
     """The chain file text (JSON, UTF-8, two-space indent, trailing newline)."""
-    return json.dumps(chain_to_dict(chain), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    return pretty_json(chain_to_dict(chain))
 
 
 def atomic_write_text(path: str | os.PathLike, text: str) -> None:
@@ -591,10 +626,48 @@ def verify_validated_matrix(doc: dict) -> bool:
     return hashlib.sha256(canonical_bytes(doc)).hexdigest() == doc["sha256"]
 
 
+def check_validated_matrix(doc: Any) -> list[str]:
+    """Everything wrong with a received validated-matrix export (empty if sound).
+
+    Recomputes the SHA-256 over the canonical content, and re-checks the matrix
+    itself: square, as many rows as states, finite entries in [0, 1], each row
+    summing to 1 within the stated tolerance.
+    """
+    if not isinstance(doc, dict) or doc.get("format") != VALIDATED_FORMAT:
+        return ["not a validated-matrix export"]
+    out: list[str] = []
+    if "sha256" not in doc:
+        out.append("there is no sha256 key")
+    elif not verify_validated_matrix(doc):
+        out.append("the SHA-256 does not match the content: the file was changed after export")
+    states, M = doc.get("states"), doc.get("matrix")
+    tol = doc.get("tolerance", ROW_SUM_TOLERANCE)
+    if not isinstance(states, list) or not isinstance(M, list) or len(M) != len(states):
+        out.append("'matrix' must have one row per entry of 'states'")
+        return out
+    if not isinstance(tol, (int, float)) or not 0 <= tol < 1:
+        out.append(f"the tolerance {tol!r} is not a number in [0, 1)")
+        tol = ROW_SUM_TOLERANCE
+    for i, row in enumerate(M):
+        name = states[i]
+        if not isinstance(row, list) or len(row) != len(states):
+            out.append(f"row of state {name!r} does not have {len(states)} entries")
+            continue
+        if not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in row):
+            out.append(f"row of state {name!r} holds a value that is not a finite number")
+            continue
+        if any(v < 0 or v > 1 for v in row):
+            out.append(f"row of state {name!r} holds a value outside [0, 1]")
+        total = math.fsum(row)
+        if abs(total - 1) > tol:
+            out.append(f"row of state {name!r} sums to {total!r} (must be 1 within {tol})")
+    return out
+
+
 def write_validated_matrix(chain: Chain, path: str | os.PathLike) -> dict:
     """Write :func:`validated_matrix` as JSON to ``path`` (atomic); return the document."""
     doc = validated_matrix(chain)
-    atomic_write_text(path, json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n")
+    atomic_write_text(path, pretty_json(doc))
     return doc
 
 
