@@ -1,0 +1,128 @@
+"""Fuzzing the chain-file and CSV readers: every failure is a clear ChainFileError.
+
+Malformed, truncated, deeply nested, wrongly typed, non-UTF-8 and huge inputs
+must never raise anything else (no traceback reaches a user) and never hang
+(size and nesting are bounded before parsing).  Common practice for file
+readers that face untrusted input.
+"""
+import json
+import subprocess
+import sys
+
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from core import io as cio
+from core.errors import ChainFileError
+from core.model import Chain
+
+GOOD = {
+    "format": "longrun-chain",
+    "version": 1,
+    "states": [{"id": "a"}, {"id": "b"}],
+    "transitions": [{"from": "a", "to": "b", "p": "1/2"}, {"from": "a", "to": "a", "p": "rest"},
+                    {"from": "b", "to": "a", "p": 1}],
+}
+GOOD_TEXT = json.dumps(GOOD)
+
+json_values = st.recursive(
+    st.none() | st.booleans() | st.integers() | st.floats(allow_nan=True, allow_infinity=True) | st.text(max_size=8),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4),
+    max_leaves=20,
+)
+
+
+def _load(data):
+    try:
+        c = cio.loads_chain(data, source="fuzz.json")
+    except ChainFileError as exc:
+        assert str(exc).startswith("fuzz.json")
+        return None
+    assert isinstance(c, Chain)
+    _ = c.problems  # validation never raises either
+    return c
+
+
+@given(st.binary(max_size=400))
+def test_random_bytes(data):
+    _load(data)
+
+
+@given(st.integers(min_value=0, max_value=len(GOOD_TEXT)))
+def test_truncated_files(k):
+    _load(GOOD_TEXT[:k])
+
+
+@given(st.integers(min_value=0, max_value=len(GOOD_TEXT) - 1), st.binary(min_size=1, max_size=4))
+def test_corrupted_bytes(pos, junk):
+    data = GOOD_TEXT.encode()
+    _load(data[:pos] + junk + data[pos + len(junk):])
+
+
+@given(
+    st.sampled_from(["format", "version", "name", "description", "step", "states", "transitions"]),
+    json_values,
+)
+def test_wrongly_typed_top_level_values(key, value):
+    doc = dict(GOOD)
+    doc[key] = value
+    _load(json.dumps(doc, allow_nan=True))
+
+
+@given(st.sampled_from(["id", "label", "x", "y"]), json_values)
+def test_wrongly_typed_state_fields(key, value):
+    doc = json.loads(GOOD_TEXT)
+    doc["states"][0][key] = value
+    _load(json.dumps(doc, allow_nan=True))
+
+
+@given(st.sampled_from(["from", "to", "p"]), json_values)
+def test_wrongly_typed_transition_fields(key, value):
+    doc = json.loads(GOOD_TEXT)
+    doc["transitions"][0][key] = value
+    _load(json.dumps(doc, allow_nan=True))
+
+
+@given(st.integers(min_value=1, max_value=5000), st.sampled_from(["[", "{\"a\":"]))
+def test_deep_nesting(depth, opener):
+    _load(opener * depth)
+
+
+@settings(max_examples=25)
+@given(st.text(max_size=300))
+def test_csv_random_text(text):
+    try:
+        c = cio.reads_matrix_csv(text, source="fuzz.csv")
+    except ChainFileError as exc:
+        assert str(exc).startswith("fuzz.csv")
+        return
+    _ = c.problems
+
+
+@given(st.lists(st.lists(st.text(alphabet="ab01./;,\t rest-e", max_size=5), max_size=4), max_size=5))
+def test_csv_random_grids(rows):
+    text = "\n".join(",".join(r) for r in rows)
+    try:
+        cio.reads_matrix_csv(text, source="fuzz.csv")
+    except ChainFileError:
+        pass
+
+
+def test_huge_file_refused_quickly(tmp_path, monkeypatch):
+    f = tmp_path / "huge.json"
+    f.write_bytes(b" " * (2 * 1024 * 1024))
+    monkeypatch.setattr(cio, "MAX_FILE_BYTES", 1024 * 1024)
+    try:
+        cio.load_chain(f)
+    except ChainFileError as exc:
+        assert "larger than the limit" in str(exc)
+    else:  # pragma: no cover
+        raise AssertionError("a file over the limit was read")
+
+
+def test_deep_nesting_in_a_subprocess_gives_clean_exit(tmp_path):
+    f = tmp_path / "deep.json"
+    f.write_text("[" * 200000)
+    r = subprocess.run([sys.executable, "-m", "core", "validate", str(f)], capture_output=True, text=True,
+                       timeout=60)
+    assert r.returncode == 2 and "nested more than" in r.stderr and "Traceback" not in r.stderr
