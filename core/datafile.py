@@ -25,8 +25,9 @@ Other rules, applied the same way everywhere:
 * Lines whose first cell starts with ``#`` are comments; blank lines are
   skipped.  The delimiter is the most frequent of comma, semicolon and tab on
   the header line.
-* An empty cell in the state column is a **gap**: the sequence is split there,
-  so no transition is counted across it.  Nothing else splits a sequence (a
+* An empty cell in the state column of a row that is not blank (its other
+  cells hold something, such as a date) is a **gap**: the sequence is split
+  there, so no transition is counted across it.  Nothing else splits a sequence (a
   missing date is not detected: rows are taken as consecutive steps).
 * Every unreadable row raises :class:`~core.errors.ChainFileError` naming the
   line: a non-number in a numeric column, a time that is neither a number nor an
