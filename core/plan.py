@@ -209,42 +209,41 @@ def _check_matrix(P: Any) -> np.ndarray:
 
 
 class _Doubling:
-    """Lazily cached ``A^(2^k)`` and block averages ``M_k = 2^-k sum_{j<2^k} A^j``.
+    """Powers ``A^(2^k)`` and block averages ``M_k = 2^-k sum_{j<2^k} A^j``, cached.
 
-    ``A^(2^(k+1)) = (A^(2^k))^2`` and ``M_(k+1) = (M_k + M_k A^(2^k)) / 2`` (the
-    matrices commute, being polynomials in ``A``).  Both are non-negative
-    combinations of non-negative matrices, rescaled to stay stochastic, so no
-    entry is ever formed by cancellation.
+    The powers come from :class:`core.evolution.PowerLadder` (repeated
+    squaring kept stochastic).  The averages obey
+    ``M_(k+1) = (M_k + M_k A^(2^k)) / 2`` (the matrices commute, being
+    polynomials in ``A``): a non-negative combination of non-negative
+    matrices, restored to stochastic rows after every product, so no entry is
+    ever formed by cancellation.
     """
 
     def __init__(self, A: np.ndarray):
-        self.A = A
-        self._pow = [A]
-        self._avg = [np.eye(A.shape[0])]
+        from .evolution import PowerLadder
+
+        self.ladder = PowerLadder(A)
+        self.A = self.ladder.P
+        self._avg = [np.eye(self.A.shape[0])]
 
     def power(self, k: int) -> np.ndarray:
-        while len(self._pow) <= k:
-            Q = self._pow[-1]
-            self._pow.append(_stochastic(Q @ Q))
-        return self._pow[k]
+        return self.ladder.square(k)
 
     def block(self, k: int) -> np.ndarray:
         while len(self._avg) <= k:
             i = len(self._avg) - 1
             M = self._avg[i]
-            self._avg.append(_stochastic(0.5 * (M + M @ self.power(i))))
+            MA = self.ladder.multiply(M, self.power(i))
+            self._avg.append(_stochastic(0.5 * (M + MA)))
         return self._avg[k]
 
     def power_vec(self, v: np.ndarray, t: int) -> np.ndarray:
         """``v A^t``."""
-        v = np.array(v, dtype=float)
-        k = 0
-        while t:
-            if t & 1:
-                v = _stochastic(v @ self.power(k))
-            t >>= 1
-            k += 1
-        return v
+        return self.ladder.apply(v, t)
+
+    def matrix_power(self, t: int) -> np.ndarray:
+        """``A^t``."""
+        return self.ladder.power(t)
 
     def average_vec(self, v: np.ndarray, m: int) -> tuple[np.ndarray, np.ndarray]:
         """``(1/m) sum_{j<m} v A^j`` and ``v A^m`` (``m >= 1``)."""
@@ -275,7 +274,7 @@ class _Doubling:
                 size = 1 << k
                 acc = _stochastic((count / (count + size)) * acc + (size / (count + size)) * (W @ self.block(k)))
                 count += size
-                W = _stochastic(W @ self.power(k))
+                W = self.ladder.multiply(W, self.power(k))
             m >>= 1
             k += 1
         return acc
@@ -319,15 +318,7 @@ def average_of_powers(P: Any, m: int, *, stride: int = 1) -> np.ndarray:
 
 
 def _matrix_power(D: _Doubling, t: int) -> np.ndarray:
-    n = D.A.shape[0]
-    M = np.eye(n)
-    k = 0
-    while t:
-        if t & 1:
-            M = _stochastic(M @ D.power(k))
-        t >>= 1
-        k += 1
-    return M
+    return D.matrix_power(t)
 
 
 def estimate_law(P: Any, plan: Plan, *, ids: Sequence[str] | None = None) -> np.ndarray:
