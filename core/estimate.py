@@ -1037,8 +1037,9 @@ def _closed_signature(structure) -> tuple[tuple[int, ...], ...]:
     return tuple(structure.classes[c].states for c in structure.closed)
 
 
-def _aperiodic_irreducible(structure) -> bool:
-    return bool(structure.irreducible and structure.classes[0].period == 1)
+def _has_mixing_time(structure) -> bool:
+    """One closed class, aperiodic: ``d(t)`` tends to 0 (transient states allowed)."""
+    return bool(len(structure.closed) == 1 and structure.classes[structure.closed[0]].period == 1)
 
 
 def iter_derived_uncertainty(
@@ -1050,6 +1051,7 @@ def iter_derived_uncertainty(
     prior: float | None = None,
     level: float | None = None,
     epsilon: float = 0.25,
+    quantities: Iterable[str] | None = None,
     chunk: int = 100,
 ) -> Generator[Progress, None, DerivedUncertainty]:
     """Intervals for the stationary law, mixing time and absorption of a fitted chain.
@@ -1073,21 +1075,46 @@ def iter_derived_uncertainty(
         Interval level (default the fit's).
     epsilon : float
         Mixing-time threshold on the worst-start total-variation distance.
+    quantities : iterable of str, optional
+        Any of ``"stationary"``, ``"absorption"`` (expected steps and
+        probabilities) and ``"mixing_time"``; default all three.
+    chunk : int
+        Draws per progress snapshot.
 
     Notes
     -----
     Each drawn matrix is analysed exactly (:func:`core.structure.classify`,
     :func:`core.stationary.stationary_laws`, :func:`core.passage.absorption`,
-    :func:`core.evolution.mixing_time`).  A draw whose closed classes differ from
-    the fitted chain's (possible with the bootstrap, which can lose a rare
-    transition) is left out and counted; the mixing time is given only when the
-    fitted chain is irreducible and aperiodic, and left out for draws where it
-    is not defined.
+    :func:`core.evolution.mixing`, the function behind ``mixing_time``); the
+    class structure is computed once per support pattern.  A draw whose closed
+    classes differ from the fitted chain's (possible with the bootstrap, which
+    can lose a rare transition) is left out and counted; the mixing time is given only when the
+    fitted chain has a single closed class and it is aperiodic, and left out for
+    draws where it is not defined.
     """
-    from .evolution import mixing_time
+    from .errors import LimitError
+    from .evolution import mixing
     from .passage import absorption
     from .stationary import stationary_laws
     from .structure import classify
+
+    structures: dict[bytes, Any] = {}
+
+    def structure_of(P: np.ndarray):
+        # the class structure depends only on which entries are positive: classify each
+        # support pattern once (posterior draws all share one pattern)
+        key = np.packbits(P > 0).tobytes()
+        S = structures.get(key)
+        if S is None:
+            S = structures[key] = classify(P)
+        return S
+
+    def mix(P: np.ndarray, S, pi: np.ndarray) -> float | None:
+        try:
+            m = mixing(P, epsilon, pi=pi, structure=S)
+        except LimitError:
+            return None
+        return None if m.steps is None else float(m.steps)
 
     if not fit.complete:
         bad = [fit.states[i] for i in np.flatnonzero(~np.all(np.isfinite(fit.estimate), axis=1))]
@@ -1104,21 +1131,27 @@ def iter_derived_uncertainty(
     alpha = float(fit.prior or 0.0) if prior is None else float(prior)
     if alpha < 0 or not math.isfinite(alpha):
         raise OptionError(f"the pseudo-count must be 0 or more, not {prior}")
+    wanted = {"stationary", "absorption", "mixing_time"} if quantities is None else set(quantities)
+    unknown = wanted - {"stationary", "absorption", "mixing_time"}
+    if unknown:
+        raise OptionError(
+            f"unknown derived quantity {sorted(unknown)[0]!r} (use 'stationary', 'absorption', 'mixing_time')"
+        )
     level = fit.level if level is None else float(level)
     if not 0 < level < 1:
         raise OptionError(f"the confidence level must be between 0 and 1, not {level}")
     rng = np.random.default_rng(seed)
     n = fit.n
     P0 = fit.estimate
-    S0 = classify(P0)
+    S0 = structure_of(P0)
     sig0 = _closed_signature(S0)
     laws0 = stationary_laws(P0, S0)
     pi0 = np.sum(laws0, axis=0)
-    transient = [s for c in S0.transient for s in S0.classes[c].states]
+    transient = [s for c in S0.transient for s in S0.classes[c].states] if "absorption" in wanted else []
     closed_names = ["+".join(fit.states[s] for s in S0.classes[c].states) for c in S0.closed]
     A0 = absorption(P0, S0) if transient else None
-    mixing = _aperiodic_irreducible(S0)
-    m0 = mixing_time(P0, epsilon, pi=pi0) if mixing else None
+    has_mix = "mixing_time" in wanted and _has_mixing_time(S0)
+    m0 = mix(P0, S0, pi0) if has_mix else None
 
     pis = []
     steps = []
@@ -1133,7 +1166,7 @@ def iter_derived_uncertainty(
             fit.counts, m, method=method, prior=alpha, estimate=P0, rng=rng
         )
         for P in Ps:
-            S = classify(P)
+            S = structure_of(P)
             if _closed_signature(S) != sig0:
                 continue
             used += 1
@@ -1142,12 +1175,9 @@ def iter_derived_uncertainty(
                 A = absorption(P, S)
                 steps.append(A.expected_steps[transient])
                 probs.append(A.probabilities[transient])
-            if mixing:
-                if _aperiodic_irreducible(S):
-                    t = mixing_time(P, epsilon, pi=pis[-1])
-                    mixes.append(np.nan if t is None else float(t))
-                else:
-                    mixes.append(np.nan)
+            if has_mix:
+                t = mix(P, S, pis[-1]) if _has_mixing_time(S) else None
+                mixes.append(np.nan if t is None else t)
         done += m
         yield Progress(done, draws, f"{done} of {draws} matrices analysed")
 
@@ -1164,7 +1194,7 @@ def iter_derived_uncertainty(
 
     if used:
         Pi = np.array(pis)
-        for c in S0.closed:
+        for c in S0.closed if "stationary" in wanted else ():
             for s in S0.classes[c].states:
                 lo, hi, k = interval(Pi[:, s])
                 values.append(DerivedInterval("stationary", fit.states[s], None, float(pi0[s]), lo, hi, k))
@@ -1185,7 +1215,7 @@ def iter_derived_uncertainty(
                                 "absorption", fit.states[s], name, float(A0.probabilities[s, c_i]), lo, hi, k
                             )
                         )
-        if mixing:
+        if has_mix:
             lo, hi, k = interval(np.array(mixes), discrete=True)
             values.append(
                 DerivedInterval("mixing_time", None, None, None if m0 is None else float(m0), lo, hi, k)
@@ -1196,10 +1226,10 @@ def iter_derived_uncertainty(
             f"{draws - used} of {draws} drawn matrices had other closed classes than the fitted chain "
             "(a rare transition lost or gained) and were left out"
         )
-    if not mixing:
+    if "mixing_time" in wanted and not has_mix:
         notes.append(
-            "no mixing time: the fitted chain is not irreducible and aperiodic, so the distance to a single "
-            "stationary law need not shrink"
+            "no mixing time: the fitted chain has several closed classes or a periodic one, so the distance "
+            "to a single stationary law need not shrink"
         )
     mt = [v for v in values if v.quantity == "mixing_time"]
     if mt and mt[0].draws < used:

@@ -432,3 +432,162 @@ def test_fit_from_chain_round_trip(tmp_path):
     # an edited chain no longer matches its counts
     edited = load_chain(path).with_transitions([("up", "up", "0.7"), ("up", "down", "0.3")])
     assert fit_from_chain(edited) is None
+
+
+# --------------------------------------------------------------------------
+# uncertainty of derived answers
+# --------------------------------------------------------------------------
+from core.estimate import derived_uncertainty, iter_derived_uncertainty  # noqa: E402
+
+
+def exact_stationary(P):
+    """Stationary law by an mpmath solve at 30 digits (reference library, independent of core)."""
+    import mpmath
+
+    mpmath.mp.dps = 30
+    n = len(P)
+    A = mpmath.matrix(n, n)
+    for i in range(n):
+        for j in range(n):
+            A[i, j] = mpmath.mpf(P[j][i]) - (1 if i == j else 0)
+    for j in range(n):
+        A[n - 1, j] = 1
+    b = mpmath.matrix([0] * (n - 1) + [1])
+    return np.array([float(v) for v in mpmath.lu_solve(A, b)])
+
+
+def test_e8_two_state_chain_intervals_collapse_on_the_closed_form():
+    # LPW 2nd ed. Example 1.1 / 4.1 and REFERENCES.md E8 (computed): P = [[0.7, 0.3], [0.1, 0.9]],
+    # pi = (q/(p+q), p/(p+q)) = (1/4, 3/4), t_mix(1/4) = 3.  Counts proportional to P with 10^7
+    # departures per row make the posterior very tight around these values.
+    C = np.array([[7_000_000, 3_000_000], [1_000_000, 9_000_000]])
+    fit = fit_counts(C, states=["a", "b"])
+    d = derived_uncertainty(fit, draws=200, seed=1)
+    pi = {v.state: v for v in d.of("stationary")}
+    assert pi["a"].point == pytest.approx(0.25, abs=1e-12)
+    assert pi["a"].low < 0.25 < pi["a"].high and pi["a"].high - pi["a"].low < 1e-3
+    assert pi["b"].low < 0.75 < pi["b"].high
+    (mt,) = d.of("mixing_time")
+    assert mt.point == 3 and mt.low == 3 and mt.high == 3 and mt.draws == 200
+    assert d.used == 200 and d.draws == 200 and d.seed == 1
+    assert "200 matrices" in d.describe() and "seed 1" in d.describe()
+
+
+def test_e2_drunkards_walk_absorption_intervals():
+    # Grinstead & Snell, Introduction to Probability, §11.2, Examples 11.13-11.16 (REFERENCES E2:
+    # P and N seen, t and B from memory): t = N1 = (3, 4, 3), B = [[3/4,1/4],[1/2,1/2],[1/4,3/4]].
+    P = np.array([[1, 0, 0, 0, 0], [.5, 0, .5, 0, 0], [0, .5, 0, .5, 0], [0, 0, .5, 0, .5], [0, 0, 0, 0, 1]])
+    C = (P * 2_000_000).astype(np.int64)
+    fit = fit_counts(C, states=["home", "c1", "c2", "c3", "bar"])
+    d = derived_uncertainty(fit, draws=200, seed=3)
+    steps = {v.state: v for v in d.of("expected_steps")}
+    for s, t in (("c1", 3), ("c2", 4), ("c3", 3)):
+        assert steps[s].point == pytest.approx(t, rel=1e-12)
+        assert steps[s].low < t < steps[s].high and steps[s].high - steps[s].low < 0.02
+    ab = {(v.state, v.target): v for v in d.of("absorption")}
+    for (s, target), b in {("c1", "home"): 0.75, ("c2", "bar"): 0.5, ("c3", "bar"): 0.75}.items():
+        assert ab[(s, target)].point == pytest.approx(b, rel=1e-12)
+        assert ab[(s, target)].low < b < ab[(s, target)].high
+    assert not d.of("mixing_time")
+    assert any("no mixing time" in note for note in d.notes)
+    with pytest.raises(OptionError, match="unknown derived quantity"):
+        derived_uncertainty(fit, draws=10, quantities=["entropy"])
+
+
+def test_posterior_intervals_shrink_with_more_data():
+    """Interval widths fall like 1/sqrt(T) (asymptotic normality, common practice):
+    16 times the data must at least halve every width (the expected factor is 4)."""
+    truth = exact_stationary(TRUE_P.tolist())
+    widths = []
+    for T, seed in ((500, 21), (8000, 22)):
+        path = simulate(TRUE_P, T, 1, np.random.default_rng(seed))[0]
+        d = derived_uncertainty(fit_counts(count_transitions([path], 3)), draws=400, seed=seed)
+        widths.append(np.array([v.high - v.low for v in d.of("stationary")]))
+        if T == 8000:
+            for v, t in zip(d.of("stationary"), truth):
+                assert v.low <= t <= v.high
+    assert np.all(widths[1] < 0.5 * widths[0]), widths
+
+
+def test_posterior_intervals_cover_the_true_stationary_law():
+    """Repeated data sets from TRUE_P: the 95% posterior interval of each stationary entry holds
+    the true value (mpmath solve) in about 95% of 100 repetitions; binomial test at alpha = 1e-6
+    against 0.95 (it would catch a coverage below about 0.80).  Credible intervals have
+    approximately nominal frequentist coverage for large samples (Bernstein-von Mises, common
+    practice); 2000 steps per data set, 100 draws per interval."""
+    truth = exact_stationary(TRUE_P.tolist())
+    R = 100
+    paths = simulate(TRUE_P, 2000, R, np.random.default_rng(77))
+    hits = np.zeros(3, dtype=int)
+    for r, path in enumerate(paths):
+        fit = fit_counts(count_transitions([path], 3))
+        d = derived_uncertainty(fit, draws=100, seed=r, quantities=["stationary"])
+        assert not d.of("mixing_time")
+        for k, v in enumerate(d.of("stationary")):
+            hits[k] += v.low <= truth[k] <= v.high
+    for k in hits:
+        assert stats.binomtest(int(k), R, 0.95).pvalue > ALPHA, hits
+
+
+def test_expected_steps_cover_the_truth():
+    """Absorbing chain of our own: transient a, b; absorbing x.  Truth t = (I - Q)^-1 1
+    (G&S §11.2, Theorem 11.5; numpy.linalg.solve as the reference).  80 data sets of 40 runs of
+    60 steps (absorbed long before: P(still transient) = 0.8^60 < 2e-6); coverage of the 95%
+    posterior interval (100 draws) tested against 0.95 at alpha = 1e-6."""
+    P = np.array([[0.5, 0.3, 0.2], [0.4, 0.4, 0.2], [0.0, 0.0, 1.0]])
+    Q = P[:2, :2]
+    truth = np.linalg.solve(np.eye(2) - Q, np.ones(2))
+    rng = np.random.default_rng(5)
+    R = 80
+    hits = np.zeros(2, dtype=int)
+    for r in range(R):
+        runs = np.vstack([simulate(P, 60, 20, rng, start=0), simulate(P, 60, 20, rng, start=1)])
+        fit = fit_counts(count_transitions(runs, 3))
+        d = derived_uncertainty(fit, draws=100, seed=r, quantities=["absorption"])
+        for k, v in enumerate(d.of("expected_steps")):
+            hits[k] += v.low <= truth[k] <= v.high
+    for k in hits:
+        assert stats.binomtest(int(k), R, 0.95).pvalue > ALPHA, hits
+
+
+def test_bootstrap_leaves_out_draws_with_another_structure():
+    # state 0 leaves for the absorbing state 1 once in 51 departures; a bootstrap row loses that
+    # transition with probability (50/51)^51 (binomial zero count), turning 0 into a closed class.
+    C = np.array([[50, 1], [0, 10]])
+    fit = fit_counts(C)
+    D = 1000
+    d = derived_uncertainty(fit, draws=D, method="bootstrap", seed=9, quantities=["stationary"])
+    p_keep = 1 - (50 / 51) ** 51
+    assert stats.binomtest(d.used, D, p_keep).pvalue > ALPHA
+    assert any("left out" in note for note in d.notes)
+    # the posterior with prior 0 keeps the observed support: every draw is used
+    assert derived_uncertainty(fit, draws=200, seed=9).used == 200
+
+
+def test_derived_is_a_seeded_generator():
+    C = np.array([[30, 10], [5, 25]])
+    fit = fit_counts(C)
+    gen = iter_derived_uncertainty(fit, draws=250, seed=4, chunk=100)
+    snaps = []
+    while True:
+        try:
+            snaps.append(next(gen))
+        except StopIteration as stop:
+            result = stop.value
+            break
+    assert [s.done for s in snaps] == [100, 200, 250] and snaps[-1].total == 250
+    again = derived_uncertainty(fit, draws=250, seed=4)
+    assert again.values == result.values
+    other = derived_uncertainty(fit, draws=250, seed=5)
+    assert other.values != result.values
+
+
+def test_derived_refuses_rows_without_estimate():
+    fit = fit_counts(np.array([[3, 1], [0, 0]]), states=["a", "b"])
+    with pytest.raises(OptionError, match="'b' is never left"):
+        derived_uncertainty(fit, draws=10)
+    with pytest.raises(OptionError, match="at least 2"):
+        derived_uncertainty(fit_counts(np.array([[3, 1], [1, 1]])), draws=1)
+    # with a prior the empty row is the prior alone and the draws work
+    d = derived_uncertainty(fit_counts(np.array([[3, 1], [0, 0]]), prior=1.0), draws=50)
+    assert d.prior == 1.0 and d.used == 50
