@@ -1,0 +1,37 @@
+"""``longrun analyze FILE [--json] [--epsilon E] [--start ID]``: the exact long-run analysis."""
+from __future__ import annotations
+
+from ._common import add_file_argument, load_valid, probability, state_index, write_stdout
+
+HELP = "exact long-run analysis: classes, period, stationary laws, absorption, mixing, spectrum"
+DESCRIPTION = (
+    "Exact long-run analysis of a chain: communicating classes (closed or transient, period, "
+    "cyclic subclasses), stationary law of each closed class, absorption probabilities and "
+    "expected steps before absorption, the long-run law from every start, mean return times, "
+    "Kemeny's constant, the mixing time and the spectrum. Prints a readable report, or with "
+    "--json the machine-readable document."
+)
+
+
+def add_arguments(parser):
+    add_file_argument(parser)
+    parser.add_argument("--json", action="store_true", help="print the analysis as JSON (full-precision floats)")
+    parser.add_argument(
+        "--epsilon",
+        type=probability,
+        default=0.25,
+        metavar="E",
+        help="total variation threshold of the mixing time, between 0 and 1 (default 0.25)",
+    )
+    parser.add_argument("--start", metavar="ID", default=None, help="also report what happens from this start state")
+
+
+def run(args) -> int:
+    from ..analysis import analyze
+    from ..jsonout import dumps
+
+    chain = load_valid(args)
+    start = state_index(chain, args.start, option="--start")
+    report = analyze(chain, epsilon=args.epsilon, start=start)
+    write_stdout(dumps(report.to_json()) if args.json else report.to_text())
+    return 0
