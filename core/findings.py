@@ -377,23 +377,15 @@ def _g(x: float, digits: int = 3) -> str:
 
 
 def _count(x: float) -> str:
-    x = float(x)
-    if not math.isfinite(x):
-        return "forever"
-    if x < 1e6:
-        return f"{x:,.0f}" if x >= 10 else f"{x:.3g}"
-    for value, word in ((1e12, "trillion"), (1e9, "billion"), (1e6, "million")):
-        if value <= x < value * 1000:
-            return f"{x / value:.2g} {word}"
-    return f"{x:.2g}"
+    from .units import format_count
+
+    return format_count(x)
 
 
 def _steps(t: float, step) -> str:
-    from .units import describe_steps
+    from .units import format_steps
 
-    if not math.isfinite(float(t)):
-        return "forever"
-    return describe_steps(t, step)
+    return format_steps(t, step)
 
 
 class _Names:
@@ -704,7 +696,7 @@ def _transient_start(ctx):
         explanation = (
             f"The start{'' if ctx.start_index is not None else ' law'} lies in the transient class "
             f"{names.many(cls.states)}, which the chain leaves for good after "
-            f"{_count(stay)} steps on average ({_steps(stay, ctx.step)}; exact, from the start). "
+            f"{_steps(stay, ctx.step)} on average (exact, from the start). "
             f"{compare}"
         )
         remedy = (
@@ -777,8 +769,8 @@ def _bottlenecks(ctx):
                 )
             else:
                 compare = (
-                    f"A simulation needs many times {_count(max(e_S, e_Sc))} steps "
-                    f"({_steps(max(e_S, e_Sc), ctx.step)}) to weigh the two sides correctly."
+                        f"A simulation needs many times {_steps(max(e_S, e_Sc), ctx.step)} "
+                    "to weigh the two sides correctly."
                 )
             explanation = (
                 f"The states {names.many(S)} (long-run share {_g(piS)}) and the rest of their class "
@@ -900,8 +892,8 @@ def _tiny(ctx):
     explanation = (
         f"{len(items)} transition{'s have' if len(items) != 1 else ' has'} a probability below "
         f"{TINY_PROBABILITY:g}: {shown}{more}. Such rare events set the time to equilibrium: "
-        f"from {a0!r} the smallest one takes {_count(wait)} steps on average to happen "
-        f"({_steps(wait, ctx.step)}), and a simulation sees it rarely or never.{compare}"
+        f"from {a0!r} the smallest one takes {_steps(wait, ctx.step)} on average to happen, "
+        f"and a simulation sees it rarely or never.{compare}"
     )
     remedy = (
         "Check the values (a slipped exponent?). If they are right, rely on the exact analysis "
@@ -1036,8 +1028,8 @@ def _mixing(ctx):
             f"a common rule of thumb asks for at least {MIXING_TIMES_PER_RUN}."
         )
     explanation = (
-        f"From the worst start it takes t_mix(1/4) = {_count(t4)} steps "
-        f"({_steps(t4, ctx.step)}) before the chain's law is within 1/4 (total variation) of the "
+        f"From the worst start it takes t_mix(1/4) = {_steps(t4, ctx.step)} "
+        f"before the chain's law is within 1/4 (total variation) of the "
         f"long-run law, and t_mix({ctx.epsilon:g}) = {_count(te)} steps to be within "
         f"{ctx.epsilon:g}. {compare}"
     )
@@ -1130,7 +1122,7 @@ def _absorbing(ctx):
         extra = (
             f" {ctx.start_text()[0].upper()}{ctx.start_text()[1:]} the chain is absorbed with probability "
             f"{_g(p_abs, 4)}"
-            + (f", after {_count(steps)} steps on average ({_steps(steps, ctx.step)})" if p_abs >= 1 - 1e-12 else "")
+            + (f", after {_steps(steps, ctx.step)} on average" if p_abs >= 1 - 1e-12 else "")
             + "."
         )
         data.update(absorbed=p_abs, expected_steps=steps if p_abs >= 1 - 1e-12 else None)

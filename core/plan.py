@@ -245,8 +245,23 @@ class _Doubling:
         """``A^t``."""
         return self.ladder.power(t)
 
+    def block_vec(self, w: np.ndarray, k: int) -> np.ndarray:
+        """``2^-k sum_{j<2^k} w A^j`` with vector-matrix products only.
+
+        ``a_(i+1) = (a_i + a_i A^(2^i)) / 2`` from ``a_0 = w``: ``k`` products.
+        """
+        a = np.array(w, dtype=float)
+        for i in range(k):
+            a = _stochastic(0.5 * (a + np.maximum(a @ self.power(i), 0.0)))
+        return a
+
     def average_vec(self, v: np.ndarray, m: int) -> tuple[np.ndarray, np.ndarray]:
-        """``(1/m) sum_{j<m} v A^j`` and ``v A^m`` (``m >= 1``)."""
+        """``(1/m) sum_{j<m} v A^j`` and ``v A^m`` (``m >= 1``).
+
+        The binary digits of ``m`` split the sum into blocks of ``2^k`` terms,
+        each averaged by :meth:`block_vec` from the law at its first term:
+        ``O(n^2 log^2 m)`` work once the squares exist.
+        """
         acc = np.zeros_like(v, dtype=float)
         w = np.array(v, dtype=float)
         count = 0
@@ -254,10 +269,10 @@ class _Doubling:
         while m:
             if m & 1:
                 size = 1 << k
-                blk = w @ self.block(k)
+                blk = self.block_vec(w, k)
                 acc = _stochastic((count / (count + size)) * acc + (size / (count + size)) * blk)
                 count += size
-                w = _stochastic(w @ self.power(k))
+                w = _stochastic(np.maximum(w @ self.power(k), 0.0))
             m >>= 1
             k += 1
         return acc, w
@@ -397,7 +412,55 @@ def indicator_asymptotic_variance(P: Any, pi: np.ndarray | None = None) -> np.nd
     return np.maximum(s2, 0.0)
 
 
-def _noise(P: np.ndarray, A: np.ndarray | None, mu: np.ndarray, est: np.ndarray, plan: Plan):
+class _Facts:
+    """Class structure, stationary laws and absorption of one matrix, computed once."""
+
+    def __init__(self, P: np.ndarray):
+        from .structure import classify
+
+        self.P = P
+        self.st = classify(P)
+        self._laws = None
+        self._absorb = None
+
+    @property
+    def laws(self):
+        if self._laws is None:
+            from .stationary import stationary_laws
+
+            self._laws = stationary_laws(self.P, self.st)
+        return self._laws
+
+    def reach(self, v: np.ndarray) -> np.ndarray:
+        """Probability of ending in each closed class (order of ``st.closed``) from law ``v``."""
+        if len(self.st.closed) == 1:
+            return np.array([1.0])
+        if self._absorb is None:
+            from .passage import absorption
+
+            self._absorb = absorption(self.P, self.st)
+        r = np.clip(v @ self._absorb.probabilities, 0.0, None)
+        return r / r.sum()
+
+    def limit(self, v: np.ndarray) -> np.ndarray:
+        """The Cesaro law from ``v``: the mass ending in each closed class times its law
+        (as :func:`core.passage.limit_law`, reusing the cached structure)."""
+        out = np.zeros(self.P.shape[0])
+        for w, law in zip(self.reach(v), self.laws):
+            out += w * law
+        return _stochastic(np.clip(out, 0.0, None))
+
+    def period(self, v: np.ndarray) -> int:
+        """lcm of the periods of the closed classes that the law ``v`` reaches."""
+        d = 1
+        for r, c in zip(self.reach(v), self.st.closed):
+            p = self.st.classes[c].period or 1
+            if r > 0 and p > 1:
+                d = d * p // math.gcd(d, p)
+        return d
+
+
+def _noise(FA, mu: np.ndarray, est: np.ndarray, plan: Plan):
     """Per-state standard deviation of the plan's estimate at R replicates, and how."""
     R = plan.replicates
     if plan.estimator == "final":
@@ -407,18 +470,9 @@ def _noise(P: np.ndarray, A: np.ndarray | None, mu: np.ndarray, est: np.ndarray,
             "final step, sqrt(p(1-p)/R), exact"
         )
         return sd, how, None
-    from .passage import absorption
-    from .stationary import stationary_laws
-    from .structure import classify
-
     m = plan.samples
-    st = classify(A)
-    laws = stationary_laws(A, st)
-    if len(st.closed) == 1:
-        weights = np.array([1.0])
-    else:
-        weights = np.clip(mu @ absorption(A, st).probabilities, 0.0, None)
-        weights = weights / weights.sum()
+    A, st, laws = FA.P, FA.st, FA.laws
+    weights = FA.reach(mu)
     n = A.shape[0]
     within = np.zeros(n)
     mean = np.zeros(n)
@@ -444,7 +498,21 @@ def _noise(P: np.ndarray, A: np.ndarray | None, mu: np.ndarray, est: np.ndarray,
             ", plus the spread between replicates that end in different closed classes; "
             "the steps spent before reaching a closed class are neglected"
         )
-    how += " (a large-m approximation)"
+    how += " (a large-m approximation"
+    # integrated autocorrelation time of each indicator, sigma^2 / (pi (1 - pi)): the
+    # approximation needs m to be large against it
+    var1 = np.zeros(n)
+    for w, law in zip(weights, laws):
+        var1 += w * law * (1.0 - law)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tau = np.where(var1 > 0, within / np.where(var1 > 0, var1, 1.0), 0.0)
+    tmax = float(tau.max()) if n else 0.0
+    if tmax > 0 and m < 10 * tmax:
+        how += (
+            f"; rough here, because {m} samples are only {m / tmax:.2g} times the longest "
+            f"integrated autocorrelation time, {tmax:.3g} samples"
+        )
+    how += ")"
     return sd, how, sigma2
 
 
@@ -501,23 +569,25 @@ def _min_samples(D: _Doubling, mu: np.ndarray, target: np.ndarray, tol: float, m
     result is checked and, if needed, advanced one sample at a time.
     """
     k = 0
+    avgs = [np.array(mu, dtype=float)]  # avgs[k] = average of the first 2^k samples
     while True:
         if (1 << k) > max_m:
             return None
-        if _tv(mu @ D.block(k), target) <= tol:
+        if _tv(avgs[k], target) <= tol:
             break
+        avgs.append(_stochastic(0.5 * (avgs[k] + np.maximum(avgs[k] @ D.power(k), 0.0))))
         k += 1
     if k == 0:
         return 1
     base = 1 << (k - 1)
-    avg = _stochastic(mu @ D.block(k - 1))
-    w = _stochastic(mu @ D.power(k - 1))
+    avg = avgs[k - 1]
+    w = D.power_vec(mu, base)
     for i in range(k - 2, -1, -1):
         size = 1 << i
-        cand = _stochastic((base / (base + size)) * avg + (size / (base + size)) * (w @ D.block(i)))
+        cand = _stochastic((base / (base + size)) * avg + (size / (base + size)) * D.block_vec(w, i))
         if _tv(cand, target) > tol:
             avg = cand
-            w = _stochastic(w @ D.power(i))
+            w = _stochastic(np.maximum(w @ D.power(i), 0.0))
             base += size
     # base samples are unsound; step forward (a few steps at most) to the first sound count.
     limit = min(1 << k, base + 1 + 4096)
@@ -528,26 +598,6 @@ def _min_samples(D: _Doubling, mu: np.ndarray, target: np.ndarray, tol: float, m
         if _tv(avg, target) <= tol:
             return base
     return 1 << k
-
-
-def _joint_period(P: np.ndarray, pi0: np.ndarray) -> int:
-    """lcm of the periods of the closed classes that the start can reach."""
-    from .passage import absorption
-    from .structure import classify
-
-    st = classify(P)
-    periods = [st.classes[c].period or 1 for c in st.closed]
-    if all(p == 1 for p in periods):
-        return 1
-    if len(st.closed) == 1:
-        reach = np.array([1.0])
-    else:
-        reach = pi0 @ absorption(P, st).probabilities
-    d = 1
-    for p, r in zip(periods, reach):
-        if r > 0 and p > 1:
-            d = d * p // math.gcd(d, p)
-    return d
 
 
 # --------------------------------------------------------------------------
@@ -631,8 +681,11 @@ class PlanCheck:
         def per_state(v):
             return None if v is None else {sid: float(x) for sid, x in zip(ids, v)}
 
+        plan = self.plan.to_json()
+        if self.start_index is not None and self.ids is not None:
+            plan["start"] = self.ids[self.start_index]
         return {
-            "plan": self.plan.to_json(),
+            "plan": plan,
             "start": per_state(self.start_law) if self.start_index is None else ids[self.start_index],
             "expected_estimate": per_state(self.expected_estimate),
             "long_run": per_state(self.long_run),
@@ -719,7 +772,6 @@ def check_plan(chain_or_P: Any, plan: Plan) -> PlanCheck:
     'sound'
     """
     from .model import Chain
-    from .passage import limit_law
 
     ids = step = None
     if isinstance(chain_or_P, Chain):
@@ -732,18 +784,18 @@ def check_plan(chain_or_P: Any, plan: Plan) -> PlanCheck:
     tol = plan.tolerance
     B, T, s = plan.burn_in, plan.steps, plan.stride
 
-    L = np.clip(np.asarray(limit_law(P, pi0), dtype=float), 0.0, None)
-    L = L / L.sum()
+    FP = _Facts(P)
+    L = FP.limit(pi0)
     DP = _Doubling(P)
     est, DA = _estimate(DP, pi0, plan)
     tv = _tv(est, L)
     verdict = "sound" if tv <= tol else "misleading"
-    d = _joint_period(P, pi0)
+    d = FP.period(pi0)
 
     limit_est = None
     if plan.estimator == "final":
         min_steps = min_burn = None
-        reason = _final_never_reason(P, DP, pi0, L, tol, d)
+        reason = _final_never_reason(DP, pi0, L, tol, d)
         if reason:
             r_steps = r_burn = reason
         else:
@@ -755,16 +807,12 @@ def check_plan(chain_or_P: Any, plan: Plan) -> PlanCheck:
                 min_steps = max(1, t_star - B)
                 min_burn = max(0, t_star - T)
         mu = None
-        sd, how, sigma2 = _noise(P, None, pi0, est, plan)
+        sd, how, sigma2 = _noise(None, pi0, est, plan)
     else:
         mu = DP.power_vec(pi0, B)
-        A = DA.A
+        FA = FP if s == 1 else _Facts(DA.A)
         # the law of the time average as T grows (the Cesaro law of the sampled chain)
-        if s == 1:
-            limit_est = L
-        else:
-            limit_est = np.clip(np.asarray(limit_law(A, mu), dtype=float), 0.0, None)
-            limit_est = limit_est / limit_est.sum()
+        limit_est = L if s == 1 else FA.limit(mu)
         min_steps = min_burn = None
         lim_tv = _tv(limit_est, L)
         if lim_tv > tol:
@@ -781,12 +829,12 @@ def check_plan(chain_or_P: Any, plan: Plan) -> PlanCheck:
                 r_steps = ""
                 min_steps = m_star * s
         # burn-in at the plan's T: the distance is non-increasing in B
-        u, _ = DA.average_vec(pi0, plan.samples)
+        u = est if B == 0 else DA.average_vec(pi0, plan.samples)[0]
         r_burn = ""
         inf_tv = None
-        if d > 1 and d <= _MAX_EXACT_PERIOD:
-            inf_start = np.clip(np.asarray(limit_law(_matrix_power(DP, d), pi0), dtype=float), 0.0, None)
-            inf_tv = _tv(DA.average_vec(inf_start / inf_start.sum(), plan.samples)[0], L)
+        if 1 < d <= _MAX_EXACT_PERIOD:
+            inf_start = _Facts(DP.matrix_power(d)).limit(pi0)
+            inf_tv = _tv(DA.average_vec(inf_start, plan.samples)[0], L)
         if inf_tv is not None and inf_tv > tol:
             r_burn = (
                 f"with {plan.samples} samples per replicate of a chain with period {d}, even an "
@@ -798,7 +846,7 @@ def check_plan(chain_or_P: Any, plan: Plan) -> PlanCheck:
                 r_burn = f"not sound with any burn-in up to {MAX_STEPS:.0e} steps at this run length"
             else:
                 min_burn = b_star
-        sd, how, sigma2 = _noise(P, A, mu, est, plan)
+        sd, how, sigma2 = _noise(FA, mu, est, plan)
 
     check = PlanCheck(
         plan=plan,
@@ -825,19 +873,22 @@ def check_plan(chain_or_P: Any, plan: Plan) -> PlanCheck:
     return check
 
 
-def _final_never_reason(P, DP, pi0, L, tol, d) -> str:
-    """Why the final-step estimate never becomes sound ('' when it does)."""
+def _final_never_reason(DP: _Doubling, pi0, L, tol, d) -> str:
+    """Why the final-step estimate never becomes sound ('' when it does).
+
+    With joint period ``d``, ``pi0 P^(dk + r)`` tends to ``(pi0 P^r) Pi_d`` as
+    ``k`` grows, ``Pi_d`` being the limit of ``P^(dk)`` (the Cesaro limit of the
+    aperiodic ``P^d``).  These ``d`` limit points are computed exactly; when one
+    is farther from the long run than the tolerance, no run length helps.
+    """
     if d == 1 or d > _MAX_EXACT_PERIOD:
         return ""
-    from .passage import limit_law
-
-    Pd = _matrix_power(DP, d)
+    Fd = _Facts(DP.matrix_power(d))
     worst = 0.0
     v = pi0.copy()
     for _ in range(d):
-        lp = np.clip(np.asarray(limit_law(Pd, v), dtype=float), 0.0, None)
-        worst = max(worst, _tv(lp / lp.sum(), L))
-        v = _stochastic(v @ P)
+        worst = max(worst, _tv(Fd.limit(v), L))
+        v = _stochastic(np.maximum(v @ DP.A, 0.0))
     if worst <= tol:
         return ""
     return (
@@ -852,20 +903,15 @@ def _final_never_reason(P, DP, pi0, L, tol, d) -> str:
 # the plain sentence
 # --------------------------------------------------------------------------
 def _count(x: int | float) -> str:
-    """A step count for people: 10,000; 3.2 million; 4.1e15."""
-    x = float(x)
-    if x < 1e6:
-        return f"{x:,.0f}"
-    for value, word in ((1e12, "trillion"), (1e9, "billion"), (1e6, "million")):
-        if x >= value and x < value * 1000:
-            return f"{x / value:.2g} {word}"
-    return f"{x:.2g}"
+    from .units import format_count
+
+    return format_count(x)
 
 
 def _steps_phrase(t: int, step) -> str:
-    from .units import describe_steps
+    from .units import format_steps
 
-    return describe_steps(t, step)
+    return format_steps(t, step)
 
 
 def explain(check: PlanCheck) -> str:

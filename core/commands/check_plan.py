@@ -66,19 +66,14 @@ def run(args) -> int:
     return 0
 
 
-def _fmt_steps(t):
-    return f"{t:,}" if t < 10**7 else f"{t:.3e}"
-
-
 def render(check, chain, path: str, *, start_given: bool = True) -> str:
     """The readable report of a plan check."""
     import numpy as np
 
-    from ..units import describe_steps
+    from ..units import format_steps
 
     plan = check.plan
     ids = chain.ids
-    unit = f" ({chain.step.value:g} {chain.step.unit} each)" if chain.step is not None else ""
     est_name = (
         "final step (where the replicates are at the last step)"
         if plan.estimator == "final"
@@ -88,8 +83,8 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
     lines = [
         f"Plan check: {chain.name or path}",
         f"  start         {ids[check.start_index]!r}" + ("" if start_given else " (the first state; choose with --start)"),
-        f"  run           {_fmt_steps(plan.steps)} steps{unit}, i.e. {describe_steps(plan.steps, chain.step)}",
-        f"  burn-in       {_fmt_steps(plan.burn_in)} steps",
+        f"  run           {format_steps(plan.steps, chain.step)}",
+        f"  burn-in       {format_steps(plan.burn_in, chain.step)}",
         f"  replicates    {plan.replicates:,}",
         f"  estimator     {est_name}",
         f"  verdict       {check.verdict.upper()}: the estimate converges to a law {check.tv:.4g} away "
@@ -112,13 +107,12 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
     lines.append("")
     if check.min_steps is not None:
         lines.append(
-            f"  shortest sound run      {_fmt_steps(check.min_steps)} steps "
-            f"({describe_steps(check.min_steps, chain.step)}) at this burn-in"
+            f"  shortest sound run      {format_steps(check.min_steps, chain.step)} at this burn-in"
         )
     else:
         lines.append(f"  shortest sound run      none: {check.min_steps_reason}")
     if check.min_burn_in is not None:
-        lines.append(f"  shortest sound burn-in  {_fmt_steps(check.min_burn_in)} steps at this run length")
+        lines.append(f"  shortest sound burn-in  {format_steps(check.min_burn_in, chain.step)} at this run length")
     else:
         lines.append(f"  shortest sound burn-in  none: {check.min_burn_in_reason}")
     lines.append(f"  noise                   {check.noise_method}")
