@@ -225,13 +225,15 @@ def inverse_mmatrix(Q, exits) -> np.ndarray:
     return solve_mmatrix(Q, exits, np.eye(Q.shape[0]))
 
 
-def gth(P) -> np.ndarray:
+def gth(P, *, check: bool = True) -> np.ndarray:
     """Stationary law of an irreducible chain by the GTH algorithm.
 
     Parameters
     ----------
     P : (n, n) array_like
         Irreducible transition matrix.  The diagonal is never read.
+    check : bool
+        Verify irreducibility first (linear in the number of positive entries).
 
     Returns
     -------
@@ -241,8 +243,11 @@ def gth(P) -> np.ndarray:
 
     Raises
     ------
+    ValueError
+        If ``check`` and ``P`` is not irreducible.
     ArithmeticError
-        If ``P`` is not irreducible (a zero pivot appears).
+        If a zero pivot appears (not irreducible, with ``check=False``) or the
+        law over/underflows.
 
     Notes
     -----
@@ -264,6 +269,11 @@ def gth(P) -> np.ndarray:
 
     P = np.asarray(P, dtype=np.float64)
     n = P.shape[0]
+    if check:
+        from .structure import classify
+
+        if not classify(P).irreducible:
+            raise ValueError("gth needs an irreducible chain; use stationary_laws for a reducible one")
     if n == 1:
         return np.ones(1)
     E = eliminate(P, stop=1)
@@ -306,7 +316,7 @@ def stationary_laws(P, structure=None) -> tuple[np.ndarray, ...]:
     for k in structure.closed:
         st = np.asarray(structure.classes[k].states)
         pi = np.zeros(n)
-        pi[st] = gth(P[np.ix_(st, st)])
+        pi[st] = gth(P[np.ix_(st, st)], check=False)
         pi.setflags(write=False)
         out.append(pi)
     return tuple(out)
