@@ -415,6 +415,9 @@ class Observations:
         Header names of the columns used.
     source : str or None
         The file name; ``sha256`` its digest.
+    values : (rows,) ndarray or None
+        The parsed numbers of a numeric state column, in file row order (NaN
+        for gaps); None for a label column.
     """
 
     states: tuple[str, ...]
