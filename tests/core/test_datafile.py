@@ -324,3 +324,43 @@ def test_read_observations_records_the_source(tmp_path):
     rec = obs.to_json()
     assert rec["file"] == "log.csv" and len(rec["sha256"]) == 64
     assert rec["transitions"] == 2 and rec["sequences"] == 1
+
+
+# --------------------------------------------------------------------------
+# fuzz: any text gives observations or a LongrunError, never a traceback
+# --------------------------------------------------------------------------
+from hypothesis import given  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from core.errors import LongrunError  # noqa: E402
+
+_CELLS = st.sampled_from(["A", "B", "x y", "", "0", "-1", "0.5%", "1e3", "nan", "2024-01-02", "2024-01-02T03:04Z",
+                          "\"q\"", "#c", " ", "é"])
+
+
+@given(
+    rows=st.lists(st.lists(_CELLS, min_size=0, max_size=4), min_size=0, max_size=12),
+    delim=st.sampled_from([",", ";", "\t"]),
+    header=st.booleans(),
+    opts=st.fixed_dictionaries(
+        {},
+        optional={
+            "column": st.sampled_from(["1", "2", "3", "zz"]),
+            "id_column": st.sampled_from(["1", "2"]),
+            "time_column": st.sampled_from(["2", "3"]),
+            "cuts": st.sampled_from(["0", "-1%,1%", "1,0", "abc"]),
+            "quantiles": st.integers(min_value=0, max_value=5),
+            "states": st.sampled_from([["A"], ["A", "B"], ["A", "A"]]),
+        },
+    ),
+)
+def test_reader_never_raises_anything_but_user_errors(rows, delim, header, opts):
+    text = "\n".join(delim.join(r) for r in rows)
+    try:
+        table = parse_table(text, header=header)
+        obs = observations_from_table(table, **opts)
+    except LongrunError:
+        return
+    assert obs.n_transitions >= 1
+    assert all(len(s) >= 1 for s in obs.sequences)
+    assert all(0 <= int(s.min()) and int(s.max()) < obs.n for s in obs.sequences)
