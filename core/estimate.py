@@ -648,7 +648,8 @@ def _sparse_findings(ids, C, low, high, est, alpha, min_dep, level) -> list[FitF
                     "unobserved",
                     "note",
                     f"state {sid!r}: {zeros.size} transition{'s' if many else ''} never observed in "
-                    f"{int(dep[i])} departures (to {_names(ids, zeros)}); not seeing a transition does not "
+                    f"{int(dep[i])} departure{'s' if dep[i] != 1 else ''} (to {_names(ids, zeros)}); "
+                    "not seeing a transition does not "
                     f"prove it impossible: {'each' if many else 'it'} could have a probability up to "
                     f"{up:.3g} (upper end of the {pct} Wilson interval){after}",
                     (sid, *(ids[z] for z in zeros)),
