@@ -208,7 +208,7 @@ class PowerLadder:
             for k in range(hi - 1, lo - 1, -1):
                 yield k, self.square(k)
             return
-        if hi - lo <= slots:
+        if hi - lo <= max(1, slots):
             seg = [A_lo]
             for _ in range(lo + 1, hi):
                 seg.append(self._square(seg[-1]))
