@@ -376,6 +376,12 @@ def _g(x: float, digits: int = 3) -> str:
     return f"{float(x):.{digits}g}"
 
 
+def _ordinal(k: int) -> str:
+    if 10 <= k % 100 <= 20:
+        return f"{k}th"
+    return f"{k}{ {1: 'st', 2: 'nd', 3: 'rd'}.get(k % 10, 'th')}"
+
+
 def _count(x: float) -> str:
     from .units import format_count
 
@@ -846,7 +852,7 @@ def _periodic(ctx):
             f"The class {names.many(cls.states)} has period {d}: its states fall into {d} cyclic "
             f"subclasses ({subs}) that the chain visits in strict rotation, so P^t never settles. "
             f"From a fixed start all replicates sit in the same subclass at any fixed time, and "
-            f"sampling every {d}th step (or any multiple) sees only one subclass, although in the "
+            f"sampling every {_ordinal(d)} step (or any multiple) sees only one subclass, although in the "
             f"long run each holds 1/{d} of the time.{plan_note}"
         )
         remedy = (
@@ -873,7 +879,7 @@ def _tiny(ctx):
     chain = ctx.chain
     idx = chain.index
     items = sorted(
-        ((v, a, b) for (a, b), v in chain.exact_probabilities.items() if 0 < v < Fraction(TINY_PROBABILITY)),
+        ((v, a, b) for (a, b), v in chain.exact_probabilities.items() if 0 < v < Fraction(repr(TINY_PROBABILITY))),
         key=lambda t: t[0],
     )
     if not items:
@@ -918,42 +924,53 @@ _NINES = re.compile(r"^\s*\+?0?\.(9+)")
 
 
 def _near_one(ctx):
-    """Decimals so close to 1 that a double cannot keep the remainder."""
+    """Decimals so close to 1 that a double cannot keep the remainder.
+
+    Flagged: a decimal (text or JSON number, fractions excepted) with at least 15
+    nines after the point; one whose double keeps less than 3 correct digits of
+    its remainder ``1 - p``; and a JSON number read as exactly 1 in a row that
+    has other transitions (its typed digits beyond double precision, and the
+    remainder with them, were dropped when the file was read).
+    """
     from .model import REST_VALUE, parse_probability
 
     chain = ctx.chain
     idx = chain.index
-    rows_with_others: dict[str, int] = {}
-    for t in chain.transitions:
-        rows_with_others[t.source] = rows_with_others.get(t.source, 0) + 1
-    hits = []
+    parsed = []
     for t in chain.transitions:
         try:
-            v = parse_probability(t.p)
+            parsed.append((t, parse_probability(t.p)))
         except ValueError:
+            parsed.append((t, None))
+    live = {}  # transitions per row that carry probability (or 'rest')
+    for t, v in parsed:
+        if v is REST_VALUE or (v is not None and v > 0):
+            live[t.source] = live.get(t.source, 0) + 1
+    hits = []
+    for t, v in parsed:
+        if v is None or v is REST_VALUE or v <= 0 or v > 1:
             continue
-        if v is REST_VALUE or v <= 0 or v > 1:
-            continue
-        text = t.p if isinstance(t.p, str) else repr(t.p)
         if isinstance(t.p, str) and "/" in t.p:
             continue  # a fraction keeps its remainder exactly in the file
-        m = _NINES.match(text.strip().rstrip("%")) if "%" not in text else None
-        nines = len(m.group(1)) if m else 0
-        comp = 1 - v
-        stored = Fraction(float(v))
-        if isinstance(t.p, float) and v == 1 and rows_with_others[t.source] > 1:
-            hits.append((t, 0.0, None, "lost"))
+        if isinstance(t.p, float) and v == 1:
+            if live.get(t.source, 0) > 1:
+                hits.append((t, None, None, None))
             continue
+        comp = 1 - v
         if comp <= 0:
             continue
-        rel = abs((1 - stored) - comp) / comp
+        text = (t.p if isinstance(t.p, str) else repr(t.p)).strip()
+        m = _NINES.match(text)
+        nines = len(m.group(1)) if m else 0
+        stored = 1 - Fraction(float(v))  # the remainder the double holds (exact)
+        rel = abs(stored - comp) / comp
         if nines >= 15 or rel > Fraction(1, 1000):
-            hits.append((t, float(comp), float(rel), "string" if isinstance(t.p, str) else "number"))
+            hits.append((t, float(comp), float(stored), float(rel)))
     if not hits:
         return
     parts = []
-    for t, comp, rel, kind in hits[:MAX_NAMED]:
-        if kind == "lost":
+    for t, comp, stored, rel in hits[:MAX_NAMED]:
+        if comp is None:
             parts.append(
                 f"{t.source!r} -> {t.target!r} reads as exactly 1 although the row has other "
                 "transitions: the digits typed after the 16th were dropped when the file was read, "
@@ -963,8 +980,7 @@ def _near_one(ctx):
             parts.append(
                 f"{t.source!r} -> {t.target!r} = {t.p!s} leaves a remainder of {comp:.3g}, but as a "
                 f"double (what the matrix, exports and other tools hold) its remainder is "
-                f"{float(1 - Fraction(float(Fraction(str(t.p)) if kind == 'string' else t.p))):.3g}"
-                f" (off by {100 * rel:.2g}%)"
+                f"{stored:.3g} (off by {100 * rel:.2g}%)"
             )
     more = f"; and {len(hits) - MAX_NAMED} more" if len(hits) > MAX_NAMED else ""
     explanation = (
@@ -1027,11 +1043,15 @@ def _mixing(ctx):
             f"The planned run of {_count(T)} steps is only {_g(T / t4, 2)} mixing times long; "
             f"a common rule of thumb asks for at least {MIXING_TIMES_PER_RUN}."
         )
+    eps_part = (
+        f", and t_mix({ctx.epsilon:g}) = {_count(te)} steps to be within {ctx.epsilon:g}"
+        if ctx.epsilon != 0.25
+        else ""
+    )
     explanation = (
         f"From the worst start it takes t_mix(1/4) = {_steps(t4, ctx.step)} "
         f"before the chain's law is within 1/4 (total variation) of the "
-        f"long-run law, and t_mix({ctx.epsilon:g}) = {_count(te)} steps to be within "
-        f"{ctx.epsilon:g}. {compare}"
+        f"long-run law{eps_part}. {compare}"
     )
     remedy = (
         f"Use a burn-in of at least t_mix({ctx.epsilon:g}) = {_count(te)} steps and a run many "
