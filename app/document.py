@@ -101,19 +101,26 @@ class ChainEdit(QUndoCommand):
 
 
 class _Macro(QUndoCommand):
-    """Several edits undone and redone as one, with one change notification."""
+    """Several edits undone and redone as one, with one change notification.
+
+    The steps are kept as (before, after) chains on the Python side (no child
+    commands), so ownership stays simple.
+    """
 
     def __init__(self, doc: "Document", text: str):
         super().__init__(text)
         self._doc = doc
+        self.steps: list[tuple[Chain, Chain, str]] = []
 
     def redo(self) -> None:
         with self._doc._batch():
-            super().redo()
+            for _before, after, _text in self.steps:
+                self._doc._set_chain(after)
 
     def undo(self) -> None:
         with self._doc._batch():
-            super().undo()
+            for before, _after, _text in reversed(self.steps):
+                self._doc._set_chain(before)
 
 
 def _plural(n: int, word: str) -> str:
@@ -146,12 +153,15 @@ class Document(QObject):
         self._chain = chain if chain is not None else Chain(name="")
         self._path: Path | None = Path(path).resolve() if path else None
         self.undo_stack = QUndoStack(self)
-        self.undo_stack.cleanChanged.connect(lambda _clean: self.fileChanged.emit())
+        self.undo_stack.cleanChanged.connect(self._on_clean_changed)
         self._batch_depth = 0
         self._batch_start: Chain | None = None
         self._macro: _Macro | None = None
         self._sel_states: frozenset[str] = frozenset()
         self._sel_transitions: frozenset[tuple[str, str]] = frozenset()
+
+    def _on_clean_changed(self, _clean: bool) -> None:
+        self.fileChanged.emit()
 
     # -- state ----------------------------------------------------------------
     @property
@@ -210,7 +220,7 @@ class Document(QObject):
         if after is before or after == before:
             return False
         if self._macro is not None:
-            ChainEdit(self, before, after, text, parent=self._macro)
+            self._macro.steps.append((before, after, text))
             self._chain = after  # silent; the macro's push notifies once
             return True
         self.undo_stack.push(ChainEdit(self, before, after, text, merge=merge))
@@ -232,7 +242,7 @@ class Document(QObject):
             self._chain = start
             raise
         self._macro = None
-        if macro.childCount() == 0:
+        if not macro.steps:
             return
         self._chain = start
         self.undo_stack.push(macro)

@@ -102,7 +102,7 @@ class MainWindow(QMainWindow):
         if autosave:
             self.autosaver = Autosaver(self.document, interval_s=self.settings.get("recovery/interval_s"),
                                        settle_ms=self.settings.get("recovery/settle_ms"), parent=self)
-            self.autosaver.failed.connect(lambda m: self.show_message(f"Autosave failed: {m}"))
+            self.autosaver.failed.connect(self._autosave_failed)
 
         self.document.fileChanged.connect(self._update_title)
         self.document.changed.connect(self._update_actions)
@@ -111,7 +111,7 @@ class MainWindow(QMainWindow):
         self.analysis.structureReady.connect(self._show_structure)
         self.analysis.busyChanged.connect(self._show_busy)
         self.canvas.message.connect(self.show_message)
-        self.canvas.zoomChanged.connect(lambda z: self.zoom_label.setText(f"{z * 100:.0f} %"))
+        self.canvas.zoomChanged.connect(self._show_zoom)
         self.resize(1360, 860)
         if restore_layout:
             geo = self.settings.get("window/geometry")
@@ -284,6 +284,12 @@ class MainWindow(QMainWindow):
             self.resizeDocks([self.docks["checks"]], [320], Qt.Orientation.Horizontal)
 
     # -- status -------------------------------------------------------------------
+    def _autosave_failed(self, message: str) -> None:
+        self.show_message(f"Autosave failed: {message}")
+
+    def _show_zoom(self, z: float) -> None:
+        self.zoom_label.setText(f"{z * 100:.0f} %")
+
     def show_message(self, text: str, ms: int = 6000) -> None:
         self.statusBar().showMessage(text, ms)
 
@@ -665,6 +671,11 @@ class MainWindow(QMainWindow):
         self.analysis.shutdown()
         if self.autosaver is not None:
             self.autosaver.close()
+        # nothing may react to the document any more (it is torn down with the window)
+        self.canvas.editor.cancel()
+        self.canvas.scene().blockSignals(True)
+        self.document.undo_stack.blockSignals(True)
+        self.document.blockSignals(True)
 
 
 def _safe_name(name: str) -> str:

@@ -1,0 +1,103 @@
+"""App tests: offscreen Qt, temporary settings and data folders, no modal dialogs.
+
+``QT_QPA_PLATFORM`` is set before anything imports Qt, so the tests need no
+display.  Every test gets its own settings file and recovery folder (never the
+developer's), and the modal dialogs of :mod:`app.dialogs` are replaced by
+recorders; a test states the answers it wants.  After each test no analysis
+thread may still be running.
+"""
+import os
+
+os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+
+from dataclasses import dataclass, field  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import pytest  # noqa: E402
+
+REPO = Path(__file__).resolve().parents[2]
+SAMPLES = REPO / "sample_models"
+
+
+@dataclass
+class DialogLog:
+    """What the app asked or told the user, and the answers it gets."""
+
+    problems: list = field(default_factory=list)      # (title, summary, [problems])
+    save_answers: list = field(default_factory=list)  # answers to "save changes?" (default discard)
+    save_questions: list = field(default_factory=list)
+    recovery_answers: list = field(default_factory=list)
+    recovery_offers: list = field(default_factory=list)
+    open_paths: list = field(default_factory=list)
+    save_paths: list = field(default_factory=list)
+    infos: list = field(default_factory=list)
+
+
+@pytest.fixture(autouse=True)
+def isolated(tmp_path, monkeypatch):
+    monkeypatch.setenv("LONGRUN_SETTINGS_FILE", str(tmp_path / "settings" / "longrun.ini"))
+    monkeypatch.setenv("LONGRUN_DATA_DIR", str(tmp_path / "data"))
+    yield tmp_path
+    from app.analysis_service import live_threads
+
+    assert live_threads() == [], "an analysis thread was left running"
+
+
+@pytest.fixture
+def dialogs(monkeypatch):
+    from app import dialogs as d
+
+    log = DialogLog()
+    monkeypatch.setattr(d, "show_problems", lambda parent, title, summary, problems:
+                        log.problems.append((title, summary, list(problems))))
+
+    def ask_save(parent, name):
+        log.save_questions.append(name)
+        return log.save_answers.pop(0) if log.save_answers else "discard"
+
+    def ask_recovery(parent, entries):
+        log.recovery_offers.append(list(entries))
+        return log.recovery_answers.pop(0) if log.recovery_answers else "later"
+
+    monkeypatch.setattr(d, "ask_save_changes", ask_save)
+    monkeypatch.setattr(d, "ask_recovery", ask_recovery)
+    monkeypatch.setattr(d, "open_path", lambda *a, **k: log.open_paths.pop(0) if log.open_paths else "")
+    monkeypatch.setattr(d, "save_path", lambda *a, **k: log.save_paths.pop(0) if log.save_paths else "")
+    monkeypatch.setattr(d, "inform", lambda parent, title, text: log.infos.append((title, text)))
+    monkeypatch.setattr(d, "confirm", lambda *a, **k: True)
+    return log
+
+
+def _settle(window, qtbot, timeout=10000):
+    """Wait until the window's analysis has caught up with its document."""
+    svc = window.analysis
+
+    def done():
+        r = svc.report
+        s = svc.structure_report
+        return (svc.is_idle and r is not None and r.chain is window.document.chain
+                and s is not None and s.chain is window.document.chain)
+
+    qtbot.waitUntil(done, timeout=timeout)
+
+
+@pytest.fixture
+def settle(qtbot):
+    """``settle(window)`` waits until the analysis has caught up with the document."""
+    return lambda window, _qtbot=None, timeout=10000: _settle(window, qtbot, timeout)
+
+
+@pytest.fixture
+def window(qtbot, dialogs):
+    from app.main import create_application
+    from app.settings import Settings
+    from app.window import MainWindow
+
+    create_application()
+    w = MainWindow(Settings(), restore_layout=False)
+    qtbot.addWidget(w)
+    w.resize(1100, 760)
+    w.show()
+    qtbot.waitExposed(w)
+    yield w
+    w.shutdown()
