@@ -1,0 +1,1127 @@
+"""Replicate simulation: many copies of a chain at once, fast, reproducible, streaming.
+
+:class:`ReplicateSimulation` runs ``R`` independent copies ("replicates") of a
+chain for ``T`` steps from a start state, a start law or the uniform law.  It
+advances in chunks, yields a :class:`SimulationSnapshot` every ``k`` steps from
+:meth:`ReplicateSimulation.snapshots` (cancellable between chunks), and keeps
+only what the statistics need: the ensemble (where each replicate is now), the
+pooled occupancy counts of the kept draws (after a burn-in ``B``, every ``s``-th
+step), per-replicate occupancy counts in a few equal batches for a bounded
+number of "tracked" replicates (for R-hat, ESS and Monte Carlo standard errors,
+see :mod:`core.diagnostics`), and a few sample paths of bounded length.
+Memory is ``O(R + n^2)`` plus ``O(tracked * n)``; nothing of size ``R x T`` is
+ever stored.  :func:`compare` sets the result beside the exact values of the
+core engine (``pi0 P^t``, the long-run law, ``d_start(t)``).
+
+The sampler: cell tables
+------------------------
+Every row of ``P`` is quantised exactly to integer masses summing to
+``L * 2**64`` (``L = 2**b`` cells per row, each cell worth ``2**64`` units; the
+rounding of the row sum is absorbed by the row's largest entry, so each row
+sums to 1 exactly).  The alias construction (Walker 1977; Vose 1991, exact
+integer arithmetic) then splits the row into ``L`` equally likely cells, each
+owned by one state ("pure") or shared by two states ("mixed": a threshold
+``q`` in ``[0, 2**64)`` sends ``q / 2**64`` of the cell to one state and the
+rest to the other).  At most ``k - 1`` of the ``L`` cells of a row with ``k``
+successors are mixed, and ``b`` is chosen so that ``L`` is well above ``k``.
+
+One step for all replicates is then: take 16 random bits per replicate (four
+per 64-bit word of the bit generator, the cell index is their top ``b`` bits),
+add the replicate's row offset, gather the cell (one lookup in a flat ``int32``
+table holding the *next row offset* for pure cells), and resolve the few
+replicates that landed in a mixed cell with one full 64-bit word each.  So a
+step is four passes over ``R`` numbers and one table gather, with no
+temporaries, and the transition probabilities are reproduced to ``2**-(b+64)``
+(exact for every probability that is a multiple of that, e.g. any ``k/2**m``,
+and within ``~1e-24`` otherwise; a probability of ``1e-12`` is kept, not
+rounded away).
+
+Random streams
+--------------
+``numpy.random.SeedSequence(seed).spawn(3)`` gives three independent PCG64
+streams: start states, cell bits, mixed-cell coins.  Step ``t`` always consumes
+exactly ``ceil(R/4)`` words of the cell stream, and the coin stream is read in
+(step, replicate) order, so the results are bit-identical whatever the chunk
+size, the snapshot interval or the kernel (vector or scalar) used.
+
+References
+----------
+A.J. Walker, "An efficient method for generating discrete random variables with
+general distributions", *ACM Trans. Math. Software* 3(3):253-256 (1977)
+[memory].  M.D. Vose, "A linear algorithm for generating random numbers with a
+given distribution", *IEEE Trans. Software Eng.* 17(9):972-975 (1991) [memory].
+"""
+from __future__ import annotations
+
+import math
+import os
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Iterator
+
+import numpy as np
+
+from .errors import LimitError, OptionError
+
+__all__ = [
+    "MAX_REPLICATES",
+    "MAX_STEPS",
+    "DEFAULT_TRACKED",
+    "DEFAULT_MEMORY_LIMIT",
+    "MEMORY_ENV",
+    "CellTable",
+    "cell_table",
+    "start_law",
+    "estimate_memory",
+    "memory_limit_from_env",
+    "parse_bytes",
+    "SimulationSnapshot",
+    "SimulationResult",
+    "ReplicateSimulation",
+    "run",
+]
+
+#: Largest number of replicates.
+MAX_REPLICATES = 10**6
+#: Largest number of steps (the exact engine handles t < 2**63; 1e12 is beyond any run).
+MAX_STEPS = 10**12
+#: Default number of replicates whose own occupancy counts are kept (R-hat, ESS, MCSE).
+DEFAULT_TRACKED = 1000
+#: Default memory guard (bytes) for one run.
+DEFAULT_MEMORY_LIMIT = 2 * 1024**3
+#: Environment variable overriding the memory guard (e.g. ``8GiB``).
+MEMORY_ENV = "LONGRUN_SIMULATE_MEMORY"
+#: Default number of retained sample paths and their length (most recent steps).
+DEFAULT_PATHS = 8
+DEFAULT_PATH_LENGTH = 1000
+#: Row-sum tolerance of the matrices accepted (the chain validator's).
+ROW_SUM_TOLERANCE = 1e-9
+#: Up to this many replicates a scalar kernel over time beats numpy's per-call cost.
+SCALAR_REPLICATES = 4
+#: Replicate-steps per internal block (bounds the work buffers).
+_BLOCK_ELEMENTS = 1 << 18
+#: Bytes a cell table may take before fewer cells per row are used.
+_TABLE_BUDGET = 1 << 20
+
+_U = 1 << 64  # units per cell
+
+
+# ---------------------------------------------------------------------------
+# the cell table (exact alias construction)
+
+
+#: Mixed cell of a split table: a 64-bit word below ``cut`` goes to ``hit``, else to ``miss``.
+RECORD = np.dtype([("cut", np.uint64), ("hit", np.int32), ("miss", np.int32)])
+#: Cell of a wide table: a word below ``cut`` goes to ``miss + delta``, else to ``miss``
+#: (so the next offset is ``miss + (word < cut) * delta``, without a branch).
+WIDE_RECORD = np.dtype([("cut", np.uint64), ("miss", np.int32), ("delta", np.int32)])
+
+
+@dataclass(frozen=True, eq=False)
+class CellTable:
+    """Sampling tables of a transition matrix (see module notes).
+
+    Two layouts, chosen by :func:`cell_table`:
+
+    ``"split"`` (few mixed cells; the default for sparse rows and small chains)
+        16 random bits pick the cell; ``cells`` holds the next row offset
+        ``j * L`` for a pure cell and a negative marker ``x`` for a mixed cell
+        whose record is ``mixed[x]`` (negative index); a mixed cell costs one
+        64-bit word, compared with the record's ``cut`` (units ``2**-64`` of
+        the cell).
+    ``"wide"`` (rows with so many successors that most cells would be mixed)
+        one 64-bit word per replicate and step: its top ``bits`` bits pick the
+        cell and the whole word is compared with the cell's absolute ``cut``;
+        every cell is a record (pure cells have ``delta == 0``).
+
+    Attributes
+    ----------
+    n : int
+    bits : int
+        ``L = 2**bits`` equally likely cells per row.
+    kind : {"split", "wide"}
+    cells : (n * L,) ndarray
+        ``int32`` (split) or :data:`WIDE_RECORD` (wide); entry ``i * L + c`` is
+        cell ``c`` of row ``i``.
+    mixed : (M,) ndarray of RECORD
+        Mixed cells of a split table, in reverse order of creation (so that the
+        marker ``~m`` indexes record ``m`` as a negative index); empty for wide.
+    """
+
+    n: int
+    bits: int
+    kind: str
+    cells: np.ndarray
+    mixed: np.ndarray
+
+    @property
+    def L(self) -> int:
+        return 1 << self.bits
+
+    @property
+    def unit_bits(self) -> int:
+        """log2 of the units per cell (64 for split tables, ``64 - bits`` for wide ones)."""
+        return 64 if self.kind == "split" else 64 - self.bits
+
+    @property
+    def mixed_fraction(self) -> float:
+        """Share of the cells that are shared by two states."""
+        if self.kind == "split":
+            return float(self.mixed.size) / float(self.cells.size)
+        return float(np.count_nonzero(self.cells["delta"])) / float(self.cells.size)
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.cells.nbytes + self.mixed.nbytes)
+
+    def masses(self) -> list[dict[int, int]]:
+        """Exact integer mass of every transition.
+
+        Row ``i`` maps a next state ``j`` to its mass in units of
+        ``2**-(bits + unit_bits)``; the masses of a row sum to
+        ``2**(bits + unit_bits)``.  For tests and audits.
+        """
+        L, b = self.L, self.bits
+        U = 1 << self.unit_bits
+        out = []
+        for i in range(self.n):
+            row: dict[int, int] = {}
+            block = self.cells[i * L:(i + 1) * L]
+            if self.kind == "split":
+                recs = [(U, int(c), int(c)) if c >= 0 else tuple(int(v) for v in self.mixed[c].tolist())
+                        for c in block.tolist()]
+                recs = [(cut, hit, miss) for cut, hit, miss in recs]
+            else:
+                recs = []
+                for c, rec in enumerate(block.tolist()):
+                    cut, miss, delta = (int(v) for v in rec)
+                    hit = miss + delta
+                    if delta == 0:
+                        recs.append((U, hit, miss))
+                    else:
+                        recs.append((cut - (c << self.unit_bits), hit, miss))
+            for cut, hit, miss in recs:
+                row[hit >> b] = row.get(hit >> b, 0) + cut
+                if cut < U:
+                    row[miss >> b] = row.get(miss >> b, 0) + U - cut
+            out.append({j: w for j, w in row.items() if w})
+        return out
+
+    def realised_matrix(self) -> np.ndarray:
+        """The transition matrix the sampler realises, rounded to float64."""
+        P = np.zeros((self.n, self.n))
+        scale = 2.0 ** -(self.bits + self.unit_bits)
+        for i, row in enumerate(self.masses()):
+            for j, w in row.items():
+                P[i, j] = w * scale  # exact int times a power of two: one rounding
+        return P
+
+
+def check_matrix(P) -> np.ndarray:
+    """A float64 C-contiguous copy of ``P`` after checking it is row-stochastic."""
+    P = np.array(P, dtype=np.float64, order="C")
+    if P.ndim != 2 or P.shape[0] != P.shape[1] or P.shape[0] == 0:
+        raise ValueError(f"P must be a non-empty square matrix, not shape {P.shape}")
+    if not np.all(np.isfinite(P)):
+        raise ValueError("P has entries that are not finite numbers")
+    if np.any(P < 0):
+        i, j = np.argwhere(P < 0)[0]
+        raise ValueError(f"P[{i}, {j}] = {P[i, j]!r} is negative")
+    dev = np.abs(P.sum(axis=1) - 1.0)
+    if np.any(dev > ROW_SUM_TOLERANCE):
+        i = int(np.argmax(dev))
+        raise ValueError(f"row {i} of P sums to {P[i].sum()!r} (must be 1)")
+    return P
+
+
+def _min_bits(kmax: int) -> int:
+    return max(1, (kmax - 1).bit_length())
+
+
+def _split_bits(n: int, kmax: int) -> int:
+    """Cells per row for a split table: about ``32 kmax``, fewer when the table outgrows ~1 MiB."""
+    bmin = _min_bits(kmax)
+    b = min(16, bmin + 5)
+    while b > bmin + 1 and n * (1 << b) * 4 > _TABLE_BUDGET:
+        b -= 1
+    return b
+
+
+def _plan_table(P: np.ndarray) -> tuple[str, int]:
+    """(kind, bits) for P: split unless more than ~15% of its cells would be mixed."""
+    n = P.shape[0]
+    k = (P > 0).sum(axis=1)
+    kmax = int(k.max())
+    if kmax > 1 << 16:
+        return "wide", _min_bits(kmax)
+    b = _split_bits(n, kmax)
+    mixed_bound = float((k - 1).sum()) / float(n << b)
+    if mixed_bound > 0.15 or b > 16:
+        return "wide", _min_bits(kmax)
+    return "split", b
+
+
+def table_bytes(P) -> int:
+    """Bytes of the cell table :func:`cell_table` would build for ``P`` (an upper bound)."""
+    P = np.asarray(P)
+    n = P.shape[0]
+    kind, b = _plan_table(P)
+    nnz = int((P > 0).sum())
+    if kind == "split":
+        return n * (4 << b) + 16 * nnz
+    return n * (16 << b)
+
+
+def cell_table(P, *, bits: int | None = None, kind: str | None = None) -> CellTable:
+    """Build the exact cell (alias) table of a row-stochastic matrix.
+
+    Parameters
+    ----------
+    P : (n, n) array_like
+        Row-stochastic matrix (rows summing to 1 within 1e-9).
+    bits : int, optional
+        Cells per row ``2**bits``; chosen from the matrix by default.
+    kind : {"split", "wide"}, optional
+        Table layout (see :class:`CellTable`); chosen by default.
+
+    Returns
+    -------
+    CellTable
+
+    Raises
+    ------
+    ValueError
+        When ``P`` is not row-stochastic, or ``bits`` gives fewer cells than
+        some state has successors, or the table would not fit int32 offsets.
+
+    Notes
+    -----
+    Each row's probabilities become integers summing exactly to
+    ``2**(bits + unit_bits)`` (round to nearest; the largest entry absorbs the
+    row's rounding).  Vose's (1991) alias construction then runs in exact
+    integers: a mass below one cell ("small") is topped up by a donor of at
+    least one cell ("large"), making one mixed cell; whole cells of a donor
+    become pure cells.  At most ``k - 1`` cells of a row with ``k`` successors
+    are mixed.
+
+    Examples
+    --------
+    >>> t = cell_table([[0.5, 0.5], [0.25, 0.75]])
+    >>> t.realised_matrix()
+    array([[0.5 , 0.5 ],
+           [0.25, 0.75]])
+    """
+    P = check_matrix(P)
+    n = P.shape[0]
+    support = P > 0
+    kmax = int(support.sum(axis=1).max())
+    auto_kind, auto_bits = _plan_table(P)
+    kind = auto_kind if kind is None else kind
+    if kind not in ("split", "wide"):
+        raise ValueError(f"kind must be 'split' or 'wide', not {kind!r}")
+    if bits is None:
+        bits = auto_bits if kind == auto_kind else (_split_bits(n, kmax) if kind == "split" else _min_bits(kmax))
+    bits = int(bits)
+    hi = 16 if kind == "split" else 30
+    if not 1 <= bits <= hi:
+        raise ValueError(f"bits must be between 1 and {hi} for a {kind} table, not {bits}")
+    if bits < _min_bits(kmax):
+        raise ValueError(f"bits={bits} gives {1 << bits} cells per row, fewer than the {kmax} successors of some state")
+    L = 1 << bits
+    if n * L >= 2**31:
+        raise ValueError(f"a table of {n} x {L} cells does not fit 32-bit offsets")
+    ub = 64 if kind == "split" else 64 - bits
+    U = 1 << ub
+    total = L * U
+    # p * L = whole + frac exactly in float64; frac * U rounded to an integer
+    scaled = P * L
+    whole = np.floor(scaled)
+    frac_units = np.rint(np.ldexp(scaled - whole, ub))
+    if kind == "split":
+        cells = np.empty(n * L, dtype=np.int32)
+    else:
+        cells = np.zeros(n * L, dtype=WIDE_RECORD)
+    mixed: list[tuple[int, int, int]] = []
+    for i in range(n):
+        js = np.flatnonzero(support[i])
+        a = whole[i, js].astype(np.int64).tolist()
+        r = frac_units[i, js].astype(np.uint64).tolist()
+        w = [ai * U + ri for ai, ri in zip(a, r)]
+        big = max(range(len(w)), key=w.__getitem__)
+        w[big] += total - sum(w)  # the row's largest entry absorbs the rounding of the row sum
+        if w[big] <= 0:  # pragma: no cover - impossible for rows summing to 1 +- 1e-9
+            raise ValueError(f"row {i} of P cannot be normalised")
+        labels, row_mixed, pure_items, pure_counts = _vose_row(js.tolist(), w, U, bits, len(mixed))
+        mixed.extend(row_mixed)
+        k = len(labels)
+        if kind == "split":
+            blk = cells[i * L:(i + 1) * L]
+            blk[:k] = labels
+            blk[k:] = np.repeat(np.array(pure_items, dtype=np.int32), pure_counts)
+        else:
+            blk = cells[i * L:(i + 1) * L]
+            base = len(mixed) - len(row_mixed)
+            for c in range(k):
+                cut, hit, miss = mixed[base + c]
+                blk[c] = ((c << ub) + cut, miss, hit - miss)
+            blk["miss"][k:] = np.repeat(np.array(pure_items, dtype=np.int32), pure_counts)
+            blk["delta"][k:] = 0
+            blk["cut"][k:] = 0
+    if kind == "split":
+        mrec = np.array(mixed[::-1], dtype=RECORD) if mixed else np.zeros(0, dtype=RECORD)
+    else:
+        mrec = np.zeros(0, dtype=RECORD)
+    return CellTable(n=n, bits=bits, kind=kind, cells=_frozen(cells), mixed=_frozen(mrec))
+
+
+def _vose_row(items: list[int], w: list[int], U: int, bits: int, m0: int):
+    """Alias construction of one row in exact integers.
+
+    Returns (labels of the mixed cells ``~m``, their (cut, hit, miss) records,
+    pure items as row offsets, their cell counts).
+    """
+    small: list[list[int]] = []
+    large: list[list[int]] = []
+    for j, wj in zip(items, w):
+        if wj > 0:
+            (small if wj < U else large).append([j, wj])
+    labels: list[int] = []
+    recs: list[tuple[int, int, int]] = []
+    pure_items: list[int] = []
+    pure_counts: list[int] = []
+    while large:
+        if small:
+            s = small.pop()
+            lg = large[-1]
+            labels.append(~(m0 + len(recs)))
+            recs.append((s[1], s[0] << bits, lg[0] << bits))
+            lg[1] -= U - s[1]
+            if lg[1] < U:
+                large.pop()
+                small.append(lg)  # lg[1] >= s[1] > 0
+        else:
+            lg = large.pop()
+            a, rest = divmod(lg[1], U)
+            pure_items.append(lg[0] << bits)
+            pure_counts.append(a)
+            if rest:
+                small.append([lg[0], rest])
+    if small:  # pragma: no cover - the masses are exact, so nothing is left over
+        raise AssertionError("alias construction left mass over")
+    return labels, recs, pure_items, pure_counts
+
+
+def _frozen(a: np.ndarray) -> np.ndarray:
+    a.setflags(write=False)
+    return a
+
+
+# ---------------------------------------------------------------------------
+# options and guards
+
+
+def start_law(n: int, start) -> np.ndarray:
+    """The start law of a run as an ``(n,)`` probability vector.
+
+    Parameters
+    ----------
+    n : int
+        Number of states.
+    start : None, "uniform", int or (n,) array_like
+        ``None`` or ``"uniform"``: every state equally likely; an int: that
+        state; a vector: a start law (non-negative, summing to 1 within 1e-9).
+    """
+    if start is None or (isinstance(start, str) and start == "uniform"):
+        return np.full(n, 1.0 / n)
+    if isinstance(start, (bool, np.bool_)):
+        raise OptionError(f"start must be a state index, a start law or 'uniform', not {start!r}")
+    if isinstance(start, (int, np.integer)):
+        if not 0 <= int(start) < n:
+            raise OptionError(f"start state {int(start)} is out of range (the chain has states 0..{n - 1})")
+        v = np.zeros(n)
+        v[int(start)] = 1.0
+        return v
+    if isinstance(start, str):
+        raise OptionError(f"start {start!r}: give a state index, a start law or 'uniform'")
+    v = np.array(start, dtype=np.float64)
+    if v.shape != (n,):
+        raise OptionError(f"the start law must have {n} entries, not shape {v.shape}")
+    if not np.all(np.isfinite(v)) or np.any(v < 0):
+        raise OptionError("the start law must have finite, non-negative entries")
+    if abs(v.sum() - 1.0) > ROW_SUM_TOLERANCE:
+        raise OptionError(f"the start law sums to {v.sum()!r} (must be 1)")
+    return v / v.sum()
+
+
+_UNITS = {"": 1, "b": 1, "k": 1000, "kb": 1000, "m": 1000**2, "mb": 1000**2, "g": 1000**3, "gb": 1000**3,
+          "t": 1000**4, "tb": 1000**4, "kib": 1024, "mib": 1024**2, "gib": 1024**3, "tib": 1024**4}
+
+
+def parse_bytes(text: str) -> int:
+    """Parse a memory size such as ``2GiB``, ``500MB`` or ``1e9`` into bytes."""
+    s = str(text).strip().lower().replace("_", "")
+    num = s.rstrip("abcdefghijklmnopqrstuvwxyz ")
+    unit = s[len(num):].strip()
+    try:
+        value = float(num)
+    except ValueError:
+        raise OptionError(f"{text!r} is not a memory size (write e.g. 2GiB, 500MB or 1e9)") from None
+    if unit not in _UNITS or not math.isfinite(value) or value <= 0:
+        raise OptionError(f"{text!r} is not a memory size (write e.g. 2GiB, 500MB or 1e9)")
+    return int(value * _UNITS[unit])
+
+
+def memory_limit_from_env(default: int = DEFAULT_MEMORY_LIMIT) -> int:
+    """The memory guard: ``$LONGRUN_SIMULATE_MEMORY`` when set, else ``default``."""
+    raw = os.environ.get(MEMORY_ENV)
+    if not raw:
+        return default
+    try:
+        return parse_bytes(raw)
+    except OptionError as exc:
+        raise OptionError(f"environment variable {MEMORY_ENV}: {exc}") from None
+
+
+def _format_bytes(b: float) -> str:
+    for unit, size in (("GiB", 1024**3), ("MiB", 1024**2), ("KiB", 1024)):
+        if b >= size:
+            return f"{b / size:.3g} {unit}"
+    return f"{int(b)} bytes"
+
+
+def _batches(kept: int, tracked: int) -> tuple[int, int]:
+    """(equal batches per tracked replicate, batch length) for ``kept`` planned draws.
+
+    8 batches per replicate (so that split halves and live R-hat use whole
+    batches), more when there are fewer than 4 tracked replicates (batch means
+    then need batches within replicates): 32 for one replicate, 16 for two or
+    three.  Never more batches than draws; (0, 0) below 2 draws.
+    """
+    target = {1: 32, 2: 16, 3: 16}.get(tracked, 8)
+    nb = min(target, kept - (kept % 2))
+    if nb < 2:
+        return 0, 0
+    return nb, kept // nb
+
+
+def estimate_memory(n: int, replicates: int, *, tracked: int, kept: int, paths: int = DEFAULT_PATHS,
+                    path_length: int = DEFAULT_PATH_LENGTH, table_bytes: int | None = None) -> dict[str, int]:
+    """Bytes a run needs, by part (``"total"`` is the sum).
+
+    Parts: ``matrix`` (a copy of ``P``), ``table`` (cell table),
+    ``replicates`` (per-replicate work arrays and buffers), ``tracked``
+    (per-replicate batch counts of the tracked replicates), ``paths``.
+    """
+    if table_bytes is None:
+        table_bytes = n * (16 << _min_bits(n))  # dense worst case (a wide table)
+    nb, _ = _batches(kept, tracked)
+    count_bytes = 4 if kept < 2**31 else 8
+    R = replicates
+    block = max(1, _BLOCK_ELEMENTS // R)
+    parts = {
+        "matrix": 8 * n * n,
+        "table": int(table_bytes),
+        # offsets int32, index int64, flags, records (wide), start draw (float64 + int64),
+        # and per block: kept rows int64, random words (up to 8 bytes per replicate-step)
+        "replicates": R * (4 + 8 + 1 + 16 + 16) + block * R * (8 + 8),
+        "tracked": tracked * (nb + 1) * n * count_bytes if nb else 0,
+        "paths": min(paths, R) * path_length * 4,
+    }
+    parts["total"] = sum(parts.values())
+    return parts
+
+
+# ---------------------------------------------------------------------------
+# results
+
+
+@dataclass(frozen=True, eq=False)
+class SimulationSnapshot:
+    """The state of a run after ``step`` steps (all arrays read-only copies).
+
+    Attributes
+    ----------
+    step : int
+        Steps done so far (0 is the start).
+    steps : int
+        Steps planned (``T``).
+    replicates : int
+    ensemble : (n,) ndarray of int64
+        How many replicates are in each state now.
+    occupancy : (n,) ndarray of int64
+        Kept draws in each state so far, pooled over replicates.
+    kept : int
+        Kept draws per replicate so far (``occupancy.sum() == kept * replicates``).
+    paths : (p, m) ndarray of int32
+        The last ``m`` states of the first ``p`` replicates (steps
+        ``path_start .. step``).
+    path_start : int
+    elapsed : float
+        Seconds spent stepping so far.
+    done, cancelled : bool
+    """
+
+    step: int
+    steps: int
+    replicates: int
+    ensemble: np.ndarray
+    occupancy: np.ndarray
+    kept: int
+    paths: np.ndarray
+    path_start: int
+    elapsed: float
+    done: bool
+    cancelled: bool
+
+    @property
+    def progress(self) -> float:
+        return self.step / self.steps if self.steps else 1.0
+
+    @property
+    def ensemble_share(self) -> np.ndarray:
+        """Fraction of replicates in each state now."""
+        return self.ensemble / self.replicates
+
+    @property
+    def time_average(self) -> np.ndarray | None:
+        """Pooled time-average occupancy of the kept draws so far (None before the first)."""
+        total = self.kept * self.replicates
+        return self.occupancy / total if total else None
+
+    def to_json(self) -> dict:
+        return {
+            "step": self.step, "steps": self.steps, "replicates": self.replicates,
+            "ensemble": self.ensemble, "occupancy": self.occupancy, "kept": self.kept,
+            "path_start": self.path_start, "paths": self.paths, "elapsed": self.elapsed,
+            "done": self.done, "cancelled": self.cancelled,
+        }
+
+
+@dataclass(frozen=True, eq=False)
+class SimulationResult:
+    """Everything a finished (or cancelled) run measured; see :func:`compare`.
+
+    Attributes
+    ----------
+    n, replicates, steps, burn_in, stride : int
+        The run's parameters (``steps`` as planned).
+    seed : int
+        The seed (the entropy of the root ``SeedSequence``): rerunning with it
+        reproduces the run bit for bit.
+    start : (n,) ndarray
+        The start law.
+    step : int
+        Steps actually done (``< steps`` only when cancelled).
+    cancelled : bool
+    ensemble : (n,) ndarray of int64
+        Replicates in each state at ``step``.
+    occupancy : (n,) ndarray of int64
+        Kept draws per state pooled over all replicates.
+    kept : int
+        Kept draws per replicate (times ``burn_in + 1``, ``burn_in + 1 + stride``, ...).
+    tracked : int
+        Replicates whose own counts were kept (the first ``tracked`` ones).
+    batches : int
+        Equal batches per tracked replicate over the planned kept draws
+        (0 when too few draws are planned).
+    batch_length : int
+        Kept draws per batch.
+    batch_counts : (tracked, batches + 1, n) ndarray
+        Per tracked replicate, per batch, per state: kept draws counted;
+        slot ``batches`` holds the ``kept_planned - batches * batch_length``
+        draws left over at the end.
+    kept_planned : int
+    paths : (p, m) ndarray of int32
+    path_start : int
+    elapsed : float
+        Seconds spent stepping.
+    table_bits : int
+    mixed_fraction : float
+    memory : dict
+        The memory estimate (bytes by part) that the guard checked.
+    """
+
+    n: int
+    replicates: int
+    steps: int
+    burn_in: int
+    stride: int
+    seed: int
+    start: np.ndarray
+    step: int
+    cancelled: bool
+    ensemble: np.ndarray
+    occupancy: np.ndarray
+    kept: int
+    tracked: int
+    batches: int
+    batch_length: int
+    batch_counts: np.ndarray
+    kept_planned: int
+    paths: np.ndarray
+    path_start: int
+    elapsed: float
+    table_bits: int
+    mixed_fraction: float
+    memory: dict = field(default_factory=dict)
+
+    @property
+    def time_average(self) -> np.ndarray | None:
+        total = self.kept * self.replicates
+        return self.occupancy / total if total else None
+
+    @property
+    def complete_batches(self) -> int:
+        """Batches completely filled so far (all of them when the run finished)."""
+        if not self.batches:
+            return 0
+        return min(self.batches, self.kept // self.batch_length)
+
+    def replicate_counts(self) -> np.ndarray:
+        """(tracked, n) kept draws per state of each tracked replicate (all slots)."""
+        return self.batch_counts.sum(axis=1)
+
+
+# ---------------------------------------------------------------------------
+# the engine
+
+
+class _CoinStream:
+    """Sequential reader of 64-bit words (the mixed-cell coins)."""
+
+    def __init__(self, bitgen: np.random.BitGenerator, block: int = 1 << 14):
+        self._bg = bitgen
+        self._block = block
+        self._buf = np.empty(0, dtype=np.uint64)
+        self._pos = 0
+        self._list: list[int] | None = None
+
+    def take(self, k: int) -> np.ndarray:
+        avail = self._buf.size - self._pos
+        if k <= avail:
+            out = self._buf[self._pos:self._pos + k]
+            self._pos += k
+            return out
+        head = self._buf[self._pos:]
+        fresh = self._bg.random_raw(max(self._block, k - avail))
+        self._buf = fresh
+        self._list = None
+        need = k - avail
+        self._pos = need
+        return np.concatenate([head, fresh[:need]])
+
+    def next(self) -> int:
+        if self._pos >= self._buf.size:
+            self._buf = self._bg.random_raw(self._block)
+            self._pos = 0
+            self._list = None
+        if self._list is None:
+            self._list = self._buf.tolist()
+        x = self._list[self._pos]
+        self._pos += 1
+        return x
+
+
+class ReplicateSimulation:
+    """Run ``replicates`` independent copies of a chain, in chunks.
+
+    Parameters
+    ----------
+    P : (n, n) array_like
+        Row-stochastic transition matrix (``Chain.matrix()``).
+    replicates : int
+        ``R``, 1 to 10**6.
+    steps : int
+        ``T``, at least 1.
+    start : None, "uniform", int or (n,) array_like, optional
+        Start state index, start law, or uniform (default).
+    burn_in : int, optional
+        ``B`` (default 0): the draws of steps ``1..B`` are not kept.
+    stride : int, optional
+        ``s`` (default 1): kept draws are the states at steps
+        ``B + 1, B + 1 + s, B + 1 + 2s, ... <= T``.
+    seed : int or None, optional
+        Root seed of ``numpy.random.SeedSequence``; fresh entropy when None
+        (the seed used is in the result either way).
+    tracked : int, optional
+        Replicates whose own batch counts are kept for R-hat, ESS and MCSE
+        (the first ``min(R, tracked)``; default 1000).
+    paths, path_length : int, optional
+        Sample paths retained (the first ``paths`` replicates, their last
+        ``path_length`` states).
+    memory_limit : int, optional
+        Bytes the run may take (default: ``$LONGRUN_SIMULATE_MEMORY`` or
+        2 GiB); a bigger estimate raises :class:`LimitError`.
+    table : CellTable, optional
+        A prebuilt table of ``P`` (when running the same chain many times).
+
+    Raises
+    ------
+    OptionError
+        For parameters out of range (the message names the parameter).
+    LimitError
+        When the estimated memory exceeds ``memory_limit``.
+
+    Notes
+    -----
+    Drive it with :meth:`snapshots` (a generator; closing it or calling
+    :meth:`cancel` from any thread stops the run at the next chunk boundary),
+    or :meth:`advance`; :meth:`result` can be called at any time.
+
+    Examples
+    --------
+    >>> sim = ReplicateSimulation([[0.9, 0.1], [0.5, 0.5]], replicates=1000, steps=200, seed=1)
+    >>> for snap in sim.snapshots(every=100):
+    ...     pass
+    >>> res = sim.result()
+    >>> res.step, int(res.ensemble.sum())
+    (200, 1000)
+    """
+
+    def __init__(self, P, *, replicates: int, steps: int, start=None, burn_in: int = 0, stride: int = 1,
+                 seed: int | None = None, tracked: int = DEFAULT_TRACKED, paths: int = DEFAULT_PATHS,
+                 path_length: int = DEFAULT_PATH_LENGTH, memory_limit: int | None = None,
+                 table: CellTable | None = None, _kernel: str | None = None):
+        R = _whole("replicates", replicates, 1, MAX_REPLICATES)
+        T = _whole("steps", steps, 1, MAX_STEPS)
+        B = _whole("burn_in", burn_in, 0, MAX_STEPS)
+        s = _whole("stride", stride, 1, MAX_STEPS)
+        if B >= T:
+            raise OptionError(f"burn_in ({B}) must be smaller than steps ({T}): no draw would be kept")
+        tracked = _whole("tracked", tracked, 1, MAX_REPLICATES)
+        paths = _whole("paths", paths, 0, 1000)
+        path_length = _whole("path_length", path_length, 1, 10**7)
+        if seed is not None:
+            seed = _whole("seed", seed, 0, 2**128 - 1)
+        if memory_limit is None:
+            memory_limit = memory_limit_from_env()
+        P = check_matrix(P)
+        n = P.shape[0]
+        pi0 = start_law(n, start)
+        self.n, self.replicates, self.steps, self.burn_in, self.stride = n, R, T, B, s
+        self.kept_planned = (T - B - 1) // s + 1
+        self.tracked = min(R, tracked)
+        self.n_paths = min(paths, R)
+        self.path_length = path_length
+        if table is not None and table.n != n:
+            raise ValueError(f"the table is for {table.n} states, P has {n}")
+        tbytes = table_bytes(P) if table is None else table.nbytes
+        self.memory = estimate_memory(n, R, tracked=self.tracked, kept=self.kept_planned, paths=self.n_paths,
+                                      path_length=path_length, table_bytes=tbytes)
+        if self.memory["total"] > memory_limit:
+            parts = ", ".join(f"{k} {_format_bytes(v)}" for k, v in self.memory.items() if k != "total" and v)
+            raise LimitError(
+                f"this run needs about {_format_bytes(self.memory['total'])} ({parts}), over the memory "
+                f"limit of {_format_bytes(memory_limit)}; use fewer replicates or tracked replicates, "
+                f"or raise the limit (--memory-limit, or the {MEMORY_ENV} environment variable)")
+        self.table = cell_table(P) if table is None else table
+        self.start = _frozen(pi0)
+        # random streams
+        ss = np.random.SeedSequence(seed)
+        self.seed = int(ss.entropy)
+        s_start, s_cells, s_coins = ss.spawn(3)
+        rng0 = np.random.Generator(np.random.PCG64(s_start))
+        self._cells_bg = np.random.PCG64(s_cells)
+        self._coins = _CoinStream(np.random.PCG64(s_coins))
+        b = self.table.bits
+        support0 = np.flatnonzero(pi0 > 0)
+        if support0.size == 1:
+            x0 = np.full(R, support0[0], dtype=np.int32)
+        else:
+            x0 = rng0.choice(n, size=R, p=pi0).astype(np.int32)
+        self._off = np.left_shift(x0, b).astype(np.int32)
+        # work buffers
+        self._f = np.empty(R, dtype=np.int64)
+        self._neg = np.empty(R, dtype=bool)
+        # cell-stream words per step: 16 bits per replicate (split) or 64 (wide)
+        self._W = (R + 3) // 4 if self.table.kind == "split" else R
+        self._rec = np.empty(R, dtype=WIDE_RECORD) if self.table.kind == "wide" else None
+        self._wide_fields = None  # contiguous fields for the scalar wide kernel
+        self._block = max(1, _BLOCK_ELEMENTS // R)
+        self._rows = np.empty((min(self._block, self.kept_planned), R), dtype=np.int64)
+        # statistics
+        self.t = 0
+        self._kept = 0
+        self._occupancy = np.zeros(n, dtype=np.int64)
+        nb, m = _batches(self.kept_planned, self.tracked)
+        self.batches, self.batch_length = nb, m
+        cdt = np.int32 if self.kept_planned < 2**31 else np.int64
+        self._counts = np.zeros((self.tracked, nb + 1, n) if nb else (self.tracked, 1, n), dtype=cdt)
+        self._rbase = (np.arange(self.tracked, dtype=np.int64) * (self._counts.shape[1] * n))
+        self._path_buf = np.empty((self.n_paths, path_length), dtype=np.int32)
+        self._path_count = 0  # states written so far (including step 0)
+        self._record_paths(x0[: self.n_paths][:, None])
+        self._elapsed = 0.0
+        self._cancel = threading.Event()
+        self._kernel = _kernel or ("scalar" if R <= SCALAR_REPLICATES else "vector")
+        if self._kernel not in ("scalar", "vector"):
+            raise ValueError(f"unknown kernel {self._kernel!r}")
+
+    # -- public API ---------------------------------------------------------
+    @property
+    def done(self) -> bool:
+        return self.t >= self.steps
+
+    @property
+    def cancelled(self) -> bool:
+        return self._cancel.is_set()
+
+    def cancel(self) -> None:
+        """Ask the run to stop at the next chunk boundary (thread-safe)."""
+        self._cancel.set()
+
+    def default_chunk(self) -> int:
+        """Steps per chunk: about 2**20 replicate-steps (a few milliseconds)."""
+        return max(1, (1 << 20) // self.replicates)
+
+    def advance(self, k: int) -> SimulationSnapshot:
+        """Advance ``k`` steps (fewer at the end of the run) and return a snapshot."""
+        k = _whole("k", k, 0, MAX_STEPS)
+        k = min(k, self.steps - self.t)
+        t0 = time.perf_counter()
+        done = 0
+        while done < k:
+            mb = min(k - done, self._block)
+            self._advance_block(mb)
+            done += mb
+        self._elapsed += time.perf_counter() - t0
+        return self.snapshot()
+
+    def snapshots(self, every: int | None = None, *, chunk: int | None = None) -> Iterator[SimulationSnapshot]:
+        """Run to the end, yielding a snapshot every ``every`` steps and at the end.
+
+        Parameters
+        ----------
+        every : int, optional
+            Snapshot interval in steps (default: about 100 snapshots per run).
+        chunk : int, optional
+            Steps between cancellation checks (default :meth:`default_chunk`).
+
+        Yields
+        ------
+        SimulationSnapshot
+            The last one has ``done`` or ``cancelled`` set.  After
+            :meth:`cancel`, at most one more chunk is run.
+        """
+        every = max(1, self.steps // 100) if every is None else _whole("every", every, 1, MAX_STEPS)
+        chunk = self.default_chunk() if chunk is None else _whole("chunk", chunk, 1, MAX_STEPS)
+        while not self.done:
+            if self._cancel.is_set():
+                yield self.snapshot()
+                return
+            next_snap = min(self.steps, (self.t // every + 1) * every)
+            target = min(next_snap, self.t + chunk)
+            snap = self.advance(target - self.t)
+            if self.t == next_snap or self.done:
+                yield snap
+        # an already finished run yields nothing more
+
+    def run(self) -> "SimulationResult":
+        """Run to the end (or until cancelled) and return :meth:`result`."""
+        for _ in self.snapshots(every=self.steps):
+            pass
+        return self.result()
+
+    def snapshot(self) -> SimulationSnapshot:
+        return SimulationSnapshot(
+            step=self.t, steps=self.steps, replicates=self.replicates,
+            ensemble=_frozen(self.ensemble()), occupancy=_frozen(self._occupancy.copy()), kept=self._kept,
+            paths=_frozen(self._paths()), path_start=self._path_start(), elapsed=self._elapsed,
+            done=self.done, cancelled=self._cancel.is_set() and not self.done,
+        )
+
+    def ensemble(self) -> np.ndarray:
+        """(n,) replicates in each state now."""
+        return np.bincount(self._off >> self.table.bits, minlength=self.n).astype(np.int64)
+
+    def states(self) -> np.ndarray:
+        """(R,) the current state of every replicate (a copy)."""
+        return (self._off >> self.table.bits).astype(np.int64)
+
+    def result(self) -> SimulationResult:
+        return SimulationResult(
+            n=self.n, replicates=self.replicates, steps=self.steps, burn_in=self.burn_in, stride=self.stride,
+            seed=self.seed, start=self.start, step=self.t, cancelled=self._cancel.is_set() and not self.done,
+            ensemble=_frozen(self.ensemble()), occupancy=_frozen(self._occupancy.copy()), kept=self._kept,
+            tracked=self.tracked, batches=self.batches, batch_length=self.batch_length,
+            batch_counts=_frozen(self._counts.astype(np.int64)), kept_planned=self.kept_planned,
+            paths=_frozen(self._paths()), path_start=self._path_start(), elapsed=self._elapsed,
+            table_bits=self.table.bits, mixed_fraction=self.table.mixed_fraction, memory=dict(self.memory),
+        )
+
+    # -- internals ------------------------------------------------------------
+    def _kept_rows(self, t1: int, t2: int) -> tuple[list[int], int]:
+        """Offsets (0-based within steps t1..t2) of kept steps, and the kept index of the first."""
+        B, s = self.burn_in, self.stride
+        first = B + 1 if t1 <= B + 1 else B + 1 + -(-(t1 - B - 1) // s) * s
+        rows = list(range(first - t1, t2 - t1 + 1, s)) if first <= t2 else []
+        k0 = (first - B - 1) // s if rows else 0
+        return rows, k0
+
+    def _advance_block(self, mb: int) -> None:
+        t1 = self.t + 1
+        t2 = self.t + mb
+        rows, k0 = self._kept_rows(t1, t2)
+        words = self._cells_bg.random_raw(mb * self._W).reshape(mb, self._W)
+        if self._kernel == "vector":
+            path_rows = self._vector_block(words, rows)
+        else:
+            path_rows = self._scalar_block(words, rows)
+        self.t = t2
+        if rows:
+            self._accumulate(len(rows), k0)
+        if self.n_paths:
+            self._record_paths(path_rows)
+
+    def _vector_block(self, words: np.ndarray, rows: list[int]) -> np.ndarray:
+        R = self.replicates
+        tab = self.table
+        b = tab.bits
+        wide = tab.kind == "wide"
+        cells, mixed = tab.cells, tab.mixed
+        off, f, neg, rec = self._off, self._f, self._neg, self._rec
+        kept = set(rows)
+        out_rows = self._rows
+        P_ = self.n_paths
+        paths = np.empty((P_, words.shape[0]), dtype=np.int32)
+        coins = self._coins
+        if wide:
+            sh64 = np.uint64(64 - b)
+            fu = f.view(np.uint64)
+            miss, delta, cut = rec["miss"], rec["delta"], rec["cut"]
+        else:
+            sh16 = np.uint16(16 - b)
+        j = 0
+        for i in range(words.shape[0]):
+            if wide:
+                u = words[i]
+                np.right_shift(u, sh64, out=fu)
+                np.add(f, off, out=f)
+                np.take(cells, f, out=rec, mode="wrap")
+                np.less(u, cut, out=neg)
+                np.multiply(delta, neg, out=off)
+                np.add(off, miss, out=off)
+            else:
+                v = words[i].view(np.uint16)[:R]
+                if sh16:
+                    np.right_shift(v, sh16, out=v)
+                np.add(off, v, out=f)
+                np.take(cells, f, out=off, mode="wrap")
+                np.less(off, 0, out=neg)
+                idx = np.flatnonzero(neg)
+                if idx.size:
+                    r = np.take(mixed, off[idx], mode="wrap")  # negative markers index from the end
+                    off[idx] = np.where(coins.take(idx.size) < r["cut"], r["hit"], r["miss"])
+            if i in kept:
+                np.right_shift(off, b, out=out_rows[j])
+                j += 1
+            if P_:
+                np.right_shift(off[:P_], b, out=paths[:, i])
+        return paths
+
+    def _scalar_block(self, words: np.ndarray, rows: list[int]) -> np.ndarray:
+        R = self.replicates
+        tab = self.table
+        b = tab.bits
+        mb = words.shape[0]
+        off = self._off.tolist()
+        hist: list[list[int]] = []
+        if tab.kind == "split":
+            v = words.view(np.uint16)[:, :R]
+            if b < 16:
+                v = v >> np.uint16(16 - b)
+            cells = memoryview(tab.cells)
+            m_cut = tab.mixed["cut"].tolist()
+            m_hit = tab.mixed["hit"].tolist()
+            m_miss = tab.mixed["miss"].tolist()
+            coin = self._coins.next
+            for vt in v.tolist():
+                for r in range(R):
+                    x = cells[off[r] + vt[r]]
+                    if x < 0:
+                        x = m_hit[x] if coin() < m_cut[x] else m_miss[x]
+                    off[r] = x
+                hist.append(off[:])  # small R: every step's states
+        else:
+            if self._wide_fields is None:
+                self._wide_fields = tuple(memoryview(np.ascontiguousarray(tab.cells[k]))
+                                          for k in ("cut", "miss", "delta"))
+            wcut, miss, delta = self._wide_fields
+            sh = 64 - b
+            for ut in words.tolist():
+                for r in range(R):
+                    u = ut[r]
+                    c = off[r] + (u >> sh)
+                    off[r] = miss[c] + delta[c] if u < wcut[c] else miss[c]
+                hist.append(off[:])
+        self._off[:] = off
+        H = np.array(hist, dtype=np.int64).reshape(mb, R) >> b
+        if rows:
+            self._rows[: len(rows)] = H[rows]
+        return H[:, : self.n_paths].T.astype(np.int32)
+
+    def _accumulate(self, k: int, k0: int) -> None:
+        """Add kept rows ``self._rows[:k]`` (kept indices k0..k0+k-1) to the counters."""
+        X = self._rows[:k]
+        n = self.n
+        self._occupancy += np.bincount(X.ravel(), minlength=n)
+        nb, m = self.batches, self.batch_length
+        if nb:
+            ks = np.arange(k0, k0 + k)
+            g = np.minimum(ks // m, nb)
+            flat = X[:, : self.tracked] + self._rbase[None, :]
+            flat += (g * n)[:, None]
+            np.add.at(self._counts.reshape(-1), flat.ravel(), self._counts.dtype.type(1))
+        self._kept += k
+
+    def _record_paths(self, cols: np.ndarray) -> None:
+        """Append columns (p, k) of states to the ring buffer of paths."""
+        if not self.n_paths:
+            self._path_count += cols.shape[1] if cols.ndim == 2 else 0
+            return
+        Lp = self.path_length
+        k = cols.shape[1]
+        if k >= Lp:
+            cols = cols[:, -Lp:]
+            start = self._path_count + k - Lp
+            pos = start % Lp
+            self._path_buf[:, pos:] = cols[:, : Lp - pos]
+            self._path_buf[:, :pos] = cols[:, Lp - pos:]
+        else:
+            pos = self._path_count % Lp
+            first = min(k, Lp - pos)
+            self._path_buf[:, pos:pos + first] = cols[:, :first]
+            if first < k:
+                self._path_buf[:, : k - first] = cols[:, first:]
+        self._path_count += k
+
+    def _paths(self) -> np.ndarray:
+        Lp = self.path_length
+        c = self._path_count
+        if c <= Lp:
+            return self._path_buf[:, :c].copy()
+        pos = c % Lp
+        return np.concatenate([self._path_buf[:, pos:], self._path_buf[:, :pos]], axis=1)
+
+    def _path_start(self) -> int:
+        return max(0, self._path_count - self.path_length)
+
+
+def _whole(name: str, value, lo: int, hi: int) -> int:
+    if isinstance(value, (bool, np.bool_)):
+        raise OptionError(f"{name} must be a whole number, not {value!r}")
+    if isinstance(value, float) and value.is_integer():
+        value = int(value)
+    if not isinstance(value, (int, np.integer)):
+        raise OptionError(f"{name} must be a whole number, not {value!r}")
+    value = int(value)
+    if not lo <= value <= hi:
+        raise OptionError(f"{name} must be between {lo} and {hi:.0e}, not {value}" if hi >= 10**6
+                          else f"{name} must be between {lo} and {hi}, not {value}")
+    return value
+
+
+def run(P, **options) -> SimulationResult:
+    """Run a :class:`ReplicateSimulation` to the end and return its result."""
+    return ReplicateSimulation(P, **options).run()
