@@ -878,29 +878,54 @@ def _periodic(ctx):
 def _tiny(ctx):
     chain = ctx.chain
     idx = chain.index
+    limit = Fraction(repr(TINY_PROBABILITY))
     items = sorted(
-        ((v, a, b) for (a, b), v in chain.exact_probabilities.items() if 0 < v < Fraction(repr(TINY_PROBABILITY))),
+        (
+            (v, a, b)
+            for (a, b), v in chain.exact_probabilities.items()
+            if float(v) < 2 * TINY_PROBABILITY and 0 < v < limit  # cheap pre-filter first
+        ),
         key=lambda t: t[0],
     )
     if not items:
         return
-    v0, a0, b0 = items[0]
+    underflow = [(a, b) for v, a, b in items if float(v) == 0.0]
+    usable = [it for it in items if float(it[0]) > 0]
+    v0, a0, b0 = usable[0] if usable else items[0]
     p0 = float(v0)
-    wait = 1.0 / p0
-    shown = ", ".join(f"{a!r} -> {b!r} ({float(v):.3g})" for v, a, b in items[:MAX_NAMED])
+    wait = 1.0 / p0 if p0 > 0 else math.inf
+
+    def shown_value(v, a, b):
+        typed = chain.transition(a, b).p
+        if isinstance(typed, str) and typed.strip().lower() == "rest":
+            return f"'rest' = {float(v):.3g}"
+        return str(typed) if float(v) == 0.0 else f"{float(v):.3g}"
+
+    shown = ", ".join(f"{a!r} -> {b!r} ({shown_value(v, a, b)})" for v, a, b in items[:MAX_NAMED])
     more = f" and {len(items) - MAX_NAMED} more" if len(items) > MAX_NAMED else ""
     T = ctx.run_length()
     compare = (
         f" The planned run of {_count(T)} steps would see it about {_g(T * p0, 2)} times from that state."
-        if T is not None
+        if T is not None and usable
         else ""
+    )
+    wait_text = (
+        f"from {a0!r} the smallest one takes {_steps(wait, ctx.step)} on average to happen, "
+        "and a simulation sees it rarely or never."
+        if usable
+        else "a simulation never sees them."
     )
     explanation = (
         f"{len(items)} transition{'s have' if len(items) != 1 else ' has'} a probability below "
         f"{TINY_PROBABILITY:g}: {shown}{more}. Such rare events set the time to equilibrium: "
-        f"from {a0!r} the smallest one takes {_steps(wait, ctx.step)} on average to happen, "
-        f"and a simulation sees it rarely or never.{compare}"
+        f"{wait_text}{compare}"
     )
+    if underflow:
+        explanation += (
+            f" {len(underflow)} of them {'is' if len(underflow) == 1 else 'are'} below the smallest "
+            "double (about 5e-324), so the matrix, and every computation on it, treats "
+            f"{'it' if len(underflow) == 1 else 'them'} as impossible."
+        )
     remedy = (
         "Check the values (a slipped exponent?). If they are right, rely on the exact analysis "
         "for anything that depends on them, or check a simulation plan first (check-plan): it "
@@ -916,7 +941,7 @@ def _tiny(ctx):
         names=ctx.names,
         states=states,
         transitions=[(idx[a], idx[b]) for _, a, b in items],
-        data={"smallest": p0, "waiting_steps": wait, "count": len(items)},
+        data={"smallest": p0, "waiting_steps": wait, "count": len(items), "underflow": len(underflow)},
     )
 
 
@@ -932,26 +957,24 @@ def _near_one(ctx):
     has other transitions (its typed digits beyond double precision, and the
     remainder with them, were dropped when the file was read).
     """
-    from .model import REST_VALUE, parse_probability
-
     chain = ctx.chain
     idx = chain.index
-    parsed = []
+    exact = chain.exact_probabilities  # parsed at validation, 'rest' resolved, zeros dropped
+    live: dict[str, int] = {}  # transitions per row that carry probability (or are 'rest')
     for t in chain.transitions:
-        try:
-            parsed.append((t, parse_probability(t.p)))
-        except ValueError:
-            parsed.append((t, None))
-    live = {}  # transitions per row that carry probability (or 'rest')
-    for t, v in parsed:
-        if v is REST_VALUE or (v is not None and v > 0):
+        if (t.source, t.target) in exact or (isinstance(t.p, str) and t.p.strip().lower() == "rest"):
             live[t.source] = live.get(t.source, 0) + 1
     hits = []
-    for t, v in parsed:
-        if v is None or v is REST_VALUE or v <= 0 or v > 1:
+    for t in chain.transitions:
+        if isinstance(t.p, str) and ("/" in t.p or t.p.strip().lower() == "rest"):
+            continue  # a fraction or 'rest' keeps its remainder exactly
+        v = exact.get((t.source, t.target))
+        if v is None:
             continue
-        if isinstance(t.p, str) and "/" in t.p:
-            continue  # a fraction keeps its remainder exactly in the file
+        # Only values within 1e-13 of 1 can be flagged (15 nines, or a double whose
+        # remainder is off by more than 0.1%: half an ulp of 1 is 5.6e-17).
+        if float(v) < 1 - 1e-13:
+            continue
         if isinstance(t.p, float) and v == 1:
             if live.get(t.source, 0) > 1:
                 hits.append((t, None, None, None))
@@ -979,15 +1002,25 @@ def _near_one(ctx):
         else:
             parts.append(
                 f"{t.source!r} -> {t.target!r} = {t.p!s} leaves a remainder of {comp:.3g}, but as a "
-                f"double (what the matrix, exports and other tools hold) its remainder is "
-                f"{stored:.3g} (off by {100 * rel:.2g}%)"
+                f"double its remainder is {stored:.3g} (off by {100 * rel:.2g}%)"
             )
     more = f"; and {len(hits) - MAX_NAMED} more" if len(hits) > MAX_NAMED else ""
+    numbers = [t for t, *_ in hits if not isinstance(t.p, str)]
+    if numbers:
+        where = (
+            " A JSON number is read as a double, so digits beyond the 16th never reach Longrun: "
+            "the remainder used is the double's."
+        )
+    else:
+        where = (
+            " Longrun reads typed text exactly, so its own results keep the remainder, but the "
+            "matrix as doubles (in exports and in other tools) does not."
+        )
     explanation = (
         "Probabilities typed as decimals this close to 1 lose their remainder, because a double "
-        "keeps only about 16 significant digits: " + "; ".join(parts) + more + ". The small "
-        "remainder is often the event that matters (a failure, an escape), and its size sets the "
-        "long-run behaviour."
+        "keeps only about 16 significant digits: " + "; ".join(parts) + more + "." + where + " The "
+        "small remainder is often the event that matters (a failure, an escape), and its size "
+        "sets the long-run behaviour."
     )
     remedy = (
         "Type the small probabilities explicitly (e.g. 2.5e-17) and write 'rest' for the one "
@@ -995,20 +1028,20 @@ def _near_one(ctx):
     )
     yield _finding(
         "near-one-decimal",
-        "warning",
+        "warning" if numbers else "note",
         "A probability close to 1 loses its remainder",
         explanation,
         remedy,
         names=ctx.names,
         states=sorted({idx[t.source] for t, *_ in hits}),
         transitions=[(idx[t.source], idx[t.target]) for t, *_ in hits],
-        data={"count": len(hits)},
+        data={"count": len(hits), "from_numbers": len(numbers)},
     )
 
 
 # -- mixing ------------------------------------------------------------------------
 def _mixing(ctx):
-    from .evolution import mixing_time
+    from .evolution import MAX_BITS, mixing
 
     st = ctx.st
     plan = ctx.plan
@@ -1021,10 +1054,26 @@ def _mixing(ctx):
         return
     pi = ctx.laws[0]
     P = ctx.P
-    t4 = mixing_time(P, 0.25, pi=pi)
-    te = t4 if ctx.epsilon == 0.25 else mixing_time(P, ctx.epsilon, pi=pi)
+    m4 = mixing(P, 0.25, pi=pi, structure=st)
+    if m4.reason == "too large":
+        yield _finding(
+            "slow-mixing",
+            "warning",
+            "The chain takes practically for ever to forget its start",
+            f"The mixing time t_mix(1/4) exceeds 2**{MAX_BITS - 1} (about 4.6e18) steps: no "
+            "simulation of any feasible length settles on the long-run law.",
+            "Use the exact long-run law from the analysis; check the very small probabilities "
+            "that cause this.",
+            names=names,
+            data={"t_mix": None, "epsilon": ctx.epsilon, "t_mix_epsilon": None, "run_steps": ctx.run_length()},
+        )
+        return
+    t4 = m4.steps
     if t4 is None:
         return
+    te = t4 if ctx.epsilon == 0.25 else mixing(P, ctx.epsilon, pi=pi, structure=st).steps
+    if te is None:  # beyond 2**62 for a tiny epsilon: report t_mix(1/4) only
+        te = t4
     T = ctx.run_length()
     data = {"t_mix": t4, "epsilon": ctx.epsilon, "t_mix_epsilon": te, "run_steps": T}
     if plan is None:

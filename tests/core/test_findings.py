@@ -342,7 +342,19 @@ def test_near_one_decimal_typed_as_text(stay, leave, flagged):
     )
     chain = loads_chain(json.dumps(doc))
     assert chain.is_valid
-    assert ("near-one-decimal" in codes(find_all(chain))) is flagged
+    fs = find_all(chain)
+    assert ("near-one-decimal" in codes(fs)) is flagged
+    if flagged:  # typed as text, Longrun keeps the remainder exactly: a note about exports
+        f = only(fs, "near-one-decimal")
+        assert f.severity == "note" and f.transition_ids == (("up", "up"),)
+        assert "exports" in f.explanation
+
+
+def test_near_one_decimal_as_json_number_with_fifteen_nines():
+    # A JSON number with 15 nines (the typed text may have been longer): a warning.
+    doc = chain_json(["up", "down"], [("up", "up", 0.999999999999999), ("up", "down", 1e-15), ("down", "up", 1)])
+    f = only(find_all(loads_chain(json.dumps(doc))), "near-one-decimal")
+    assert f.severity == "warning" and "JSON number" in f.explanation
 
 
 def test_near_one_decimal_as_json_number_lost_its_remainder():
