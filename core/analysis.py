@@ -348,6 +348,18 @@ def _names(r: LongRunReport, states, limit: int = 12) -> str:
     return shown
 
 
+def _class_label(r: LongRunReport, k: int) -> str:
+    return f"[{k}] {_names(r, r.structure.classes[k].states, limit=3)}"
+
+
+def _ends_in(r: LongRunReport, probs: np.ndarray) -> str:
+    s = r.structure
+    hits = [(k, probs[m]) for m, k in enumerate(s.closed) if probs[m] > 0]
+    if len(hits) == 1:
+        return f"{_class_label(r, hits[0][0])} for sure"
+    return " or ".join(f"{_class_label(r, k)} (probability {_fmt_p(p)})" for k, p in hits)
+
+
 def _law_lines(r: LongRunReport, law: np.ndarray, states, max_rows: int, extra=None) -> list[str]:
     states = [i for i in states if law[i] > 0]
     order = sorted(states, key=lambda i: -law[i]) if len(states) > max_rows else states
@@ -404,6 +416,10 @@ def _format_text(r: LongRunReport, *, max_rows: int) -> str:
     # stationary laws
     for m, (k, pi) in enumerate(zip(s.closed, r.stationary)):
         cls = s.classes[k]
+        if cls.size == 1:
+            L.append(f"Absorbing state {_name(r, cls.states[0])} (class [{k}]): once entered, never left")
+            L.append("")
+            continue
         L.append(f"Stationary law of class [{k}] (long-run share of time; mean return time = 1/share)")
 
         def ret(i):
@@ -422,11 +438,9 @@ def _format_text(r: LongRunReport, *, max_rows: int) -> str:
         rows = T if len(T) <= max_rows else T[:max_rows]
         width = max(len(_name(r, i)) for i in rows)
         for i in rows:
-            probs = r.absorption.probabilities[i]
-            parts = [f"[{k}] {_fmt_p(probs[m])}" for m, k in enumerate(s.closed) if probs[m] > 0]
-            L.append(f"  {_name(r, i):<{width}}  ends in {', '.join(parts)}")
+            L.append(f"  {_name(r, i):<{width}}  ends in {_ends_in(r, r.absorption.probabilities[i])}")
             L.append(f"  {'':<{width}}  after {format_steps(r.absorption.expected_steps[i], step)} on average"
-                     f" (sd {_fmt_num(float(np.sqrt(r.absorption.steps_variance[i])))})")
+                     f" (standard deviation {_fmt_num(float(np.sqrt(r.absorption.steps_variance[i])))} steps)")
         if len(T) > max_rows:
             L.append(f"  ... {len(T) - max_rows} more transient states (use --json for all)")
         L.append("")
@@ -449,8 +463,8 @@ def _format_text(r: LongRunReport, *, max_rows: int) -> str:
         L.append("")
         L.append(f"From start state {_name(r, st.state)}")
         if not s.recurrent_mask[st.state]:
-            parts = [f"[{k}] {_fmt_p(st.absorption[m])}" for m, k in enumerate(s.closed) if st.absorption[m] > 0]
-            L.append(f"  ends in {', '.join(parts)} after {format_steps(st.expected_steps, step)} on average")
+            L.append(f"  ends in {_ends_in(r, st.absorption)}")
+            L.append(f"  after {format_steps(st.expected_steps, step)} on average")
         L.append("  long-run law:")
         L += _law_lines(r, st.limit, range(r.n), max_rows)
         if st.mixing_steps is not None:

@@ -75,30 +75,35 @@ def format_count(x: float) -> str:
     return _sig(x)
 
 
+def _q(x: float, unit: str) -> str:
+    text = _sig(x)
+    return f"{text} {unit}" if text == "1" else f"{text} {unit}s"
+
+
 def format_duration(seconds: float) -> str:
     """A duration in the largest natural unit: ``"3.5 hours"``, ``"2.74 billion years"``."""
     s = float(seconds)
     if math.isinf(s):
         return "forever"
-    if s < 120:
-        return f"{_sig(s)} seconds"
-    if s < 2 * 3600:
-        return f"{_sig(s / 60)} minutes"
-    if s < 2 * _DAY:
-        return f"{_sig(s / 3600)} hours"
+    if s < 60:
+        return _q(s, "second")
+    if s < 3600:
+        return _q(s / 60, "minute")
+    if s < _DAY:
+        return _q(s / 3600, "hour")
     if s < 14 * _DAY:
-        return f"{_sig(s / _DAY)} days"
+        return _q(s / _DAY, "day")
     if s < 8 * 7 * _DAY:
-        return f"{_sig(s / (7 * _DAY))} weeks"
+        return _q(s / (7 * _DAY), "week")
     if s < 2 * _YEAR:
-        return f"{_sig(s / (_YEAR / 12))} months"
+        return _q(s / (_YEAR / 12), "month")
     y = s / _YEAR
     if y >= 1e15:
-        return f"{_sig(y)} years"
+        return _q(y, "year")
     for scale, word in _LARGE:
         if y >= scale:
             return f"{_sig(y / scale)} {word} years"
-    return f"{_sig(y)} years"
+    return _q(y, "year")
 
 
 _ABBREVIATIONS = {"ms", "s", "sec", "min", "h", "hr", "d", "wk", "mo", "y", "yr"}
