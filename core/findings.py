@@ -459,6 +459,15 @@ def find_all(chain, *, plan=None, start=None, epsilon: float = 0.25) -> tuple[Fi
     core.errors.OptionError
         When ``start`` or ``epsilon`` is out of range (a user error in the
         request, not in the chain).
+
+    Examples
+    --------
+    >>> from core.model import Chain
+    >>> flip = Chain.from_matrix([[0, 1], [1, 0]], ids=["on", "off"])
+    >>> [f.code for f in find_all(flip)]
+    ['periodic']
+    >>> find_all(flip)[0].to_json()["states"]
+    ['on', 'off']
     """
     from .errors import OptionError
 
