@@ -307,7 +307,8 @@ def sweep_cuts(P: np.ndarray, pi: np.ndarray, C: Sequence[int]) -> list[tuple[tu
     list of (S, Phi(S), eigenvalue)
         Distinct cuts, ``S`` the side with ``pi(S) <= 1/2`` (sorted indices),
         ``Phi(S)`` by :func:`bottleneck_ratio`, and the eigenvalue of ``R``
-        whose vector gave the cut; sorted by ``Phi``.
+        whose vector gave the cut (NaN for an atom of the partition the
+        cuts generate, also a candidate); sorted by ``Phi``.
 
     References
     ----------
@@ -364,6 +365,27 @@ def sweep_cuts(P: np.ndarray, pi: np.ndarray, C: Sequence[int]) -> list[tuple[tu
         S = tuple(sorted(int(C[x]) for x in side))
         if S not in seen:
             seen[S] = (bottleneck_ratio(P, pi, S, C), float(vals[i]))
+    # With several eigenvalues near 1 (several weakly joined groups), each sweep cuts off
+    # one group or a union of groups; the atoms of the partition the cuts generate are
+    # the groups themselves, so they are candidates too.
+    if len(seen) > 1:
+        Cset = [int(x) for x in C]
+        label = {x: () for x in Cset}
+        for S in list(seen):
+            Sset = set(S)
+            for x in Cset:
+                label[x] = label[x] + (x in Sset,)
+        atoms: dict[tuple, list[int]] = {}
+        for x in Cset:
+            atoms.setdefault(label[x], []).append(x)
+        piC = pi[C].sum()
+        for atom in atoms.values():
+            if len(atom) == len(Cset):
+                continue
+            side = atom if pi[atom].sum() <= 0.5 * piC else sorted(set(Cset) - set(atom))
+            S = tuple(sorted(side))
+            if S not in seen:
+                seen[S] = (bottleneck_ratio(P, pi, S, C), float("nan"))
     out = [(S, phi_s, lam) for S, (phi_s, lam) in seen.items()]
     out.sort(key=lambda t: t[1])
     return out

@@ -467,3 +467,25 @@ def test_exit_times_relative_accuracy_and_infinity():
     # G&S Example 11.13-11.15 (seen): drunkard's walk, t = (3, 4, 3) for the inner states
     W = np.array([[1, 0, 0, 0, 0], [0.5, 0, 0.5, 0, 0], [0, 0.5, 0, 0.5, 0], [0, 0, 0.5, 0, 0.5], [0, 0, 0, 0, 1.0]])
     assert np.allclose(expected_exit_times(W, [1, 2, 3]), [3, 4, 3], rtol=1e-14)
+
+
+def test_three_weakly_joined_groups_are_each_reported():
+    # Invented: three depots of three bays each, joined by 1e-6 crossings.  Two eigenvalues
+    # of the reversibilisation lie near 1; their sweeps and the atoms of the cuts they give
+    # name every group.
+    rng = np.random.default_rng(1)
+    P = rng.random((9, 9)) + 0.1
+    for a in range(3):
+        for b in range(3):
+            if a != b:
+                P[3 * a : 3 * a + 3, 3 * b : 3 * b + 3] *= 1e-6
+    P /= P.sum(axis=1, keepdims=True)
+    chain = Chain.from_matrix(P)
+    found = {f.states for f in find_all(chain) if f.code == "bottleneck"}
+    assert found == {(0, 1, 2), (3, 4, 5), (6, 7, 8)}
+    pi = gth(P)
+    for S in found:
+        f = next(f for f in find_all(chain) if f.code == "bottleneck" and f.states == S)
+        assert f.data["phi"] == pytest.approx(bottleneck_ratio(P, pi, S), rel=1e-12)
+        assert f.data["phi"] < 1e-5
+    assert json.loads(dumps(list(find_all(chain))))  # NaN eigenvalues of atoms become null
