@@ -48,6 +48,7 @@ __all__ = [
     "estimate_law",
     "average_of_powers",
     "indicator_asymptotic_variance",
+    "bias_curve",
 ]
 
 #: The two estimators a plan may use.
@@ -897,6 +898,72 @@ def _final_never_reason(DP: _Doubling, pi0, L, tol, d) -> str:
         "long run) however long the run; use the time average, random sampling times or the "
         "lazy chain instead"
     )
+
+
+def bias_curve(chain_or_P: Any, plan: Plan, steps: Sequence[int]) -> np.ndarray:
+    """The plan's bias for many run lengths: ``TV(estimate law at T, long run)`` for each ``T``.
+
+    Everything but the run length is taken from ``plan`` (start, burn-in,
+    stride, estimator).  The squares and the law after the burn-in are shared
+    by all points, and the time averages are extended from one run length to
+    the next, so a curve of a hundred points costs little more than one
+    :func:`check_plan` (use it to chart how the bias falls with the run length).
+
+    Parameters
+    ----------
+    chain_or_P : core.model.Chain or (n, n) array_like
+    plan : Plan
+    steps : sequence of int
+        Run lengths ``T`` (at least 1, and at least the stride for the time
+        average), in any order.
+
+    Returns
+    -------
+    (len(steps),) ndarray
+        The total variation distance for each ``T``, in the order given.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> bias_curve(np.array([[0., 1.], [1., 0.]]), Plan(0, 1, estimator="average"), [1, 2, 3, 4]).tolist()
+    [0.5, 0.0, 0.16666666666666666, 0.0]
+    """
+    from .model import Chain
+
+    ids = None
+    if isinstance(chain_or_P, Chain):
+        P = _check_matrix(chain_or_P.matrix())
+        ids = chain_or_P.ids
+    else:
+        P = _check_matrix(chain_or_P)
+    pi0, _ = _start_law(plan.start, P.shape[0], ids)
+    T = np.asarray(list(steps), dtype=np.int64)
+    if T.size and (T.min() < 1 or T.max() > MAX_STEPS):
+        raise OptionError(f"run lengths must be between 1 and {MAX_STEPS:.0e}")
+    L = _Facts(P).limit(pi0)
+    DP = _Doubling(P)
+    out = np.empty(T.size)
+    order = np.argsort(T, kind="stable")
+    if plan.estimator == "final":
+        v, at = DP.power_vec(pi0, plan.burn_in), 0
+        for i in order:
+            v, at = DP.power_vec(v, int(T[i]) - at), int(T[i])
+            out[i] = _tv(v, L)
+        return out
+    s = plan.stride
+    if T.size and T.min() < s:
+        raise OptionError(f"run lengths must be at least the stride {s} for the time average")
+    DA = DP if s == 1 else _Doubling(DP.matrix_power(s))
+    w = DP.power_vec(pi0, plan.burn_in)  # law at the next sample
+    avg, count = np.zeros_like(w), 0
+    for i in order:
+        m = int(T[i]) // s
+        if m > count:
+            blk, w = DA.average_vec(w, m - count)
+            avg = _stochastic((count / m) * avg + ((m - count) / m) * blk)
+            count = m
+        out[i] = _tv(avg, L)
+    return out
 
 
 # --------------------------------------------------------------------------

@@ -19,6 +19,7 @@ from core.model import Chain, Step
 from core.plan import (
     Plan,
     average_of_powers,
+    bias_curve,
     check_plan,
     estimate_law,
     indicator_asymptotic_variance,
@@ -552,3 +553,20 @@ def test_plan_against_the_replicate_simulation_engine():
     # mean within 5 standard errors per state (two-sided normal tail 5.7e-7)
     assert np.all(np.abs(per_rep.mean(axis=0) - avg.expected_estimate) <= 5 * se)
     assert np.allclose(res.time_average, per_rep.mean(axis=0), rtol=1e-12)
+
+
+@pytest.mark.parametrize("estimator,B,s", [("final", 0, 1), ("final", 7, 1), ("average", 0, 1), ("average", 5, 3)])
+def test_bias_curve_matches_pointwise_checks(estimator, B, s):
+    # The shared, incremental curve against one independent check per run length.
+    rng = np.random.default_rng(11)
+    P = random_chain(rng, 6, density=0.3, transient=True)
+    plan = Plan(0, max(s, 1), burn_in=B, stride=s, estimator=estimator)
+    grid = [s, 3 * s + 1, 10 * s, 50, 50, 999, 10**6, 10**9 + 7, 4 * s]
+    curve = bias_curve(P, plan, grid)
+    from dataclasses import replace
+
+    for T, y in zip(grid, curve):
+        want = check_plan(P, replace(plan, steps=T)).tv
+        assert y == pytest.approx(want, rel=1e-9, abs=1e-15)
+    with pytest.raises(OptionError, match="run lengths must be between 1"):
+        bias_curve(P, plan, [0])
