@@ -1125,3 +1125,367 @@ def _whole(name: str, value, lo: int, hi: int) -> int:
 def run(P, **options) -> SimulationResult:
     """Run a :class:`ReplicateSimulation` to the end and return its result."""
     return ReplicateSimulation(P, **options).run()
+
+
+# ---------------------------------------------------------------------------
+# simulated next to exact
+
+
+#: Family-wise false-alarm rate of the per-state test "time average = long-run law".
+FAMILY_ALPHA = 1e-3
+#: R-hat above this says the replicates have not mixed (Vehtari et al. 2021 recommend 1.01).
+RHAT_THRESHOLD = 1.01
+#: p-value below which the ensemble is declared inconsistent with the exact law at its step.
+ENGINE_ALPHA = 1e-6
+#: Replicates needed before the MCSE uses independent replicates rather than batch means.
+MIN_REPLICATES_FOR_MCSE = 16
+#: Largest chain for which the exact mean of the kept draws is computed (O(n^3 log N)).
+EXACT_WINDOW_STATES = 400
+
+
+@dataclass(frozen=True, eq=False)
+class SimulationReport:
+    """A run's statistics next to the exact values of the core engine.
+
+    Attributes
+    ----------
+    result : SimulationResult
+    step : int
+        The step of the ensemble (``T``, or where a cancelled run stopped).
+    exact_at_step : (n,) ndarray
+        ``pi0 P^step`` (:func:`core.evolution.distribution_at`).
+    long_run : (n,) ndarray
+        The long-run (Cesaro) law from the start (:func:`core.passage.limit_law`).
+    ensemble_share : (n,) ndarray
+    tv_ensemble : float
+        ``TV(ensemble share, pi0 P^step)``.
+    tv_ensemble_noise : float
+        The TV a perfect sampler would show on average at this many replicates
+        (``~ sum_j sqrt(p_j (1 - p_j) / (2 pi R))``, normal approximation).
+    gof : core.diagnostics.GOF
+        Chi-square fit of the ensemble counts to ``pi0 P^step``.
+    time_average : (n,) ndarray or None
+    tv_time_average : float or None
+        ``TV(time average, long-run law)``.
+    window_mean : (n,) ndarray or None
+        Exact expected time average of these kept draws,
+        ``(1/N) sum_k pi0 P^(B+1+ks)`` (for chains up to 400 states).
+    tv_window : float or None
+        ``TV(window_mean, long-run law)``: the start-up bias of the window itself.
+    mcse : core.diagnostics.MCSE or None
+        Standard errors and effective sample sizes of the time average.
+    z : (n,) ndarray or None
+        ``(time average - long-run law) / mcse``.
+    z_crit : float
+        Bonferroni threshold for ``|z|`` at family-wise rate :data:`FAMILY_ALPHA`.
+    disagree : tuple of int
+        States whose ``|z|`` exceeds ``z_crit`` (or whose error is 0 while the
+        average differs from the long-run law).
+    rhat : (n,) ndarray or None
+        Rank-normalised split R-hat (max of bulk and folded) of each state's
+        indicator across the tracked replicates.
+    rhat_split : (n,) ndarray or None
+        Plain split R-hat.
+    rhat_draws : int
+        Kept draws per replicate used for R-hat (whole batches).
+    rhat_notes : dict of int to str
+        Why an R-hat is undefined (``nan``) or infinite.
+    curve_steps, curve_tv : ndarray
+        ``d_start(t) = TV(pi0 P^t, long-run law)`` on a log-spaced grid of
+        ``t`` in ``0..steps`` (:func:`core.evolution.tv_curve`).
+    status : {"consistent", "uncertain", "misleading", "mismatch", "incomplete"}
+    verdict : str
+        One line.
+    findings : tuple of str
+        Further plain sentences (methods, undefined values, structure).
+    """
+
+    result: SimulationResult
+    step: int
+    exact_at_step: np.ndarray
+    long_run: np.ndarray
+    ensemble_share: np.ndarray
+    tv_ensemble: float
+    tv_ensemble_noise: float
+    gof: object
+    time_average: np.ndarray | None
+    tv_time_average: float | None
+    window_mean: np.ndarray | None
+    tv_window: float | None
+    mcse: object
+    z: np.ndarray | None
+    z_crit: float
+    disagree: tuple
+    rhat: np.ndarray | None
+    rhat_split: np.ndarray | None
+    rhat_draws: int
+    rhat_notes: dict
+    curve_steps: np.ndarray
+    curve_tv: np.ndarray
+    status: str
+    verdict: str
+    findings: tuple
+
+    @property
+    def agrees(self) -> bool:
+        """True when no state's time average disagrees with the long-run law."""
+        return not self.disagree and self.time_average is not None
+
+    def to_json(self, ids=None) -> dict:
+        """The ``simulate --json`` document; ``ids`` name the states (default ``"0"``, ``"1"``...)."""
+        r = self.result
+        ids = [str(i) for i in range(r.n)] if ids is None else [str(i) for i in ids]
+
+        def per_state(v):
+            return None if v is None else {i: _num(x) for i, x in zip(ids, np.asarray(v).tolist())}
+
+        mc = self.mcse
+        return {
+            "steps": r.steps,
+            "replicates": r.replicates,
+            "burn_in": r.burn_in,
+            "stride": r.stride,
+            "seed": r.seed,
+            "start": {i: p for i, p in zip(ids, r.start.tolist()) if p > 0},
+            "step": self.step,
+            "cancelled": r.cancelled,
+            "kept": r.kept,
+            "ensemble": {i: int(c) for i, c in zip(ids, r.ensemble.tolist())},
+            "ensemble_share": per_state(self.ensemble_share),
+            "exact_at_T": per_state(self.exact_at_step),
+            "long_run": per_state(self.long_run),
+            "time_average": per_state(self.time_average),
+            "window_mean": per_state(self.window_mean),
+            "tv_ensemble": _num(self.tv_ensemble),
+            "tv_ensemble_noise": _num(self.tv_ensemble_noise),
+            "chi_square": {"statistic": _num(self.gof.statistic), "dof": self.gof.dof,
+                           "pvalue": _num(self.gof.pvalue), "cells": self.gof.cells,
+                           "pooled": self.gof.pooled, "impossible": self.gof.impossible},
+            "tv_time_average": _num(self.tv_time_average),
+            "tv_window": _num(self.tv_window),
+            "mcse": per_state(mc.se) if mc is not None else None,
+            "ess": per_state(mc.ess) if mc is not None else None,
+            "mcse_method": mc.method if mc is not None else None,
+            "z": per_state(self.z),
+            "z_crit": self.z_crit,
+            "disagree": [ids[j] for j in self.disagree],
+            "rhat": per_state(self.rhat),
+            "rhat_split": per_state(self.rhat_split),
+            "rhat_notes": {ids[j]: note for j, note in self.rhat_notes.items()},
+            "rhat_draws": self.rhat_draws,
+            "tracked": r.tracked,
+            "curve": {"steps": self.curve_steps.tolist(), "tv": [_num(x) for x in self.curve_tv.tolist()]},
+            "status": self.status,
+            "verdict": self.verdict,
+            "findings": list(self.findings),
+            "engine": {"table": "cells", "bits": r.table_bits, "mixed_fraction": r.mixed_fraction,
+                       "elapsed_seconds": r.elapsed,
+                       "replicate_steps_per_second": _num(r.step * r.replicates / r.elapsed) if r.elapsed else None},
+            "memory_bytes": r.memory,
+        }
+
+
+def _num(x):
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def curve_grid(steps: int, points: int = 60) -> np.ndarray:
+    """Sorted distinct steps ``0, 1, 2, ...`` up to ``steps``, log-spaced beyond the first few."""
+    if steps <= points:
+        return np.arange(steps + 1, dtype=np.int64)
+    g = np.unique(np.round(np.geomspace(1, steps, points)).astype(np.int64))
+    return np.concatenate([[0], g])
+
+
+def _mcse_of(result: SimulationResult, mean: np.ndarray):
+    from .diagnostics import batch_means_mcse, replicate_mcse
+
+    K = result.tracked
+    if result.kept < 1:
+        return None
+    counts = result.batch_counts
+    if K >= MIN_REPLICATES_FOR_MCSE and result.kept >= 2:
+        return replicate_mcse(counts.sum(axis=1), result.kept, replicates=result.replicates, mean=mean)
+    g = result.complete_batches
+    if g >= 1 and K * g >= 2 and result.batch_length >= 2:
+        blocks = counts[:, :g, :].reshape(K * g, result.n)
+        mc = batch_means_mcse(blocks, result.batch_length)
+        # the batches cover the tracked replicates only; scale to the pooled estimate
+        scale = math.sqrt(K / result.replicates)
+        from .diagnostics import MCSE, _ess_from_se
+
+        se = mc.se * scale
+        return MCSE(mean=mean, se=se, ess=_ess_from_se(mean, se), method=mc.method, groups=mc.groups)
+    if K >= 2 and result.kept >= 2:
+        return replicate_mcse(counts.sum(axis=1), result.kept, replicates=result.replicates, mean=mean)
+    return None
+
+
+def _rhat_of(result: SimulationResult):
+    """(rank R-hat, split R-hat, draws per replicate used, notes) over whole batches."""
+    from .diagnostics import indicator_rank_rhat, indicator_rhat, rhat_note
+
+    g = result.complete_batches
+    half = g // 2
+    h = half * result.batch_length
+    if half < 1 or h < 2:
+        return None, None, 0, {}
+    c = result.batch_counts
+    chains = np.concatenate([c[:, :half, :].sum(axis=1), c[:, half:2 * half, :].sum(axis=1)], axis=0)
+    rr = indicator_rank_rhat(chains, h)
+    rs = indicator_rhat(chains, h)
+    total = chains.sum(axis=0)
+    notes = {}
+    for j in range(result.n):
+        const = 0.0 if total[j] == 0 else (1.0 if total[j] == chains.shape[0] * h else None)
+        note = rhat_note(float(rr.rhat[j]), constant_value=const)
+        if note:
+            notes[j] = note
+    return rr.rhat, rs, 2 * h, notes
+
+
+def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 60) -> SimulationReport:
+    """Set a run's statistics beside the exact values.
+
+    Parameters
+    ----------
+    result : SimulationResult
+    P : (n, n) array_like
+        The matrix simulated.
+    structure : core.structure.Structure, optional
+    curve_points : int, optional
+        Points of the ``d_start(t)`` grid.
+
+    Returns
+    -------
+    SimulationReport
+
+    Notes
+    -----
+    The per-state test is ``|time average - long-run law| > z_crit * MCSE``
+    with a Bonferroni threshold over the states at family-wise rate
+    :data:`FAMILY_ALPHA`; the ensemble test is the chi-square fit to
+    ``pi0 P^step`` at :data:`ENGINE_ALPHA` (replicates are independent draws
+    from that law, so this checks the sampler itself).
+    """
+    from scipy.special import ndtri
+
+    from .diagnostics import chisquare_gof
+    from .evolution import distribution_at, tv_curve, tv_distance
+    from .passage import limit_law
+    from .structure import classify
+
+    P = check_matrix(P)
+    n = P.shape[0]
+    if result.n != n:
+        raise ValueError(f"the result is for {result.n} states, P has {n}")
+    if structure is None:
+        structure = classify(P)
+    pi0 = np.asarray(result.start, dtype=np.float64)
+    step = result.step
+    exact = distribution_at(P, pi0, step)
+    long_run = limit_law(P, pi0, structure)
+    R = result.replicates
+    share = result.ensemble / R
+    tv_ens = tv_distance(share, exact)
+    noise = float(np.sqrt(exact * (1 - exact) / (2 * np.pi * R)).sum())
+    gof = chisquare_gof(result.ensemble, exact)
+    grid = curve_grid(result.steps, curve_points)
+    curve = tv_curve(P, pi0, grid.tolist(), target=long_run)
+    tavg = result.time_average
+    tv_avg = tv_distance(tavg, long_run) if tavg is not None else None
+    window = None
+    if tavg is not None and n <= EXACT_WINDOW_STATES:
+        from .plan import average_of_powers
+
+        first = distribution_at(P, pi0, result.burn_in + 1)
+        window = first @ average_of_powers(P, result.kept, stride=result.stride)
+        window = np.clip(window, 0, None)
+        window /= window.sum()
+    tv_win = tv_distance(window, long_run) if window is not None else None
+    mc = _mcse_of(result, tavg) if tavg is not None else None
+    z_crit = float(ndtri(1 - FAMILY_ALPHA / (2 * n)))
+    z = None
+    disagree: tuple = ()
+    if mc is not None:
+        diff = tavg - long_run
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = np.where(mc.se > 0, diff / mc.se, np.where(np.abs(diff) > 1e-12, np.sign(diff) * np.inf, 0.0))
+        disagree = tuple(int(j) for j in np.flatnonzero(np.abs(z) > z_crit))
+    rh, rs, rdraws, notes = _rhat_of(result)
+
+    status, verdict, findings = _verdict(result, structure, exact, long_run, gof, tv_ens, tavg, tv_avg, window,
+                                         tv_win, mc, z, z_crit, disagree, rh, notes, curve)
+    return SimulationReport(
+        result=result, step=step, exact_at_step=_frozen(exact), long_run=_frozen(long_run),
+        ensemble_share=_frozen(share), tv_ensemble=tv_ens, tv_ensemble_noise=noise, gof=gof,
+        time_average=tavg, tv_time_average=tv_avg, window_mean=window, tv_window=tv_win, mcse=mc, z=z,
+        z_crit=z_crit, disagree=disagree, rhat=rh, rhat_split=rs, rhat_draws=rdraws, rhat_notes=notes,
+        curve_steps=grid, curve_tv=curve, status=status, verdict=verdict, findings=tuple(findings),
+    )
+
+
+def _verdict(result, structure, exact, long_run, gof, tv_ens, tavg, tv_avg, window, tv_win, mc, z, z_crit,
+             disagree, rh, notes, curve):
+    findings: list[str] = []
+    R, T = result.replicates, result.steps
+    # structure hints
+    reached = [k for k in structure.closed if long_run[list(structure.classes[k].states)].sum() > 0]
+    if len(reached) > 1:
+        findings.append(
+            f"{len(reached)} closed classes can be reached from the start: each replicate settles in one of them, "
+            "so replicates legitimately disagree (large R-hat) and the pooled average estimates their mixture.")
+    periodic = [structure.classes[k].period for k in reached if (structure.classes[k].period or 1) > 1]
+    if periodic:
+        findings.append(
+            f"the chain is periodic (period {max(periodic)}): pi0 P^t keeps cycling and does not converge, so the "
+            "ensemble is compared with pi0 P^T; only the time average tends to the long-run law.")
+    if result.cancelled:
+        findings.append(f"the run was cancelled at step {result.step} of {T}; statistics cover the steps done.")
+    if mc is not None:
+        findings.append(f"Monte Carlo standard errors by {mc.method}"
+                        + (f" ({result.tracked} tracked replicates of {R})" if "replicates" in mc.method else "")
+                        + "; ESS = p(1-p)/MCSE^2 per state.")
+    if result.tracked < R:
+        findings.append(f"R-hat, ESS and MCSE use the first {result.tracked} of the {R} replicates "
+                        "(their own occupancy counts are kept; raise --tracked for more).")
+    for j, note in sorted(notes.items()):
+        findings.append(f"R-hat of state {j}: {note}.")
+    if window is not None and tv_win is not None:
+        findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
+                        "(the start-up bias of this burn-in and run length).")
+    findings.append(f"d_start(T) = TV(pi0 P^T, long-run law) = {curve[-1]:.3g}.")
+    # the verdict
+    if gof.impossible or (np.isfinite(gof.pvalue) and gof.pvalue < ENGINE_ALPHA):
+        why = ("replicates sit in states that pi0 P^t gives probability 0" if gof.impossible
+               else f"chi-square p = {gof.pvalue:.2g}")
+        return "mismatch", (f"MISMATCH: the ensemble at step {result.step} is not a sample of the exact law "
+                            f"pi0 P^t ({why}); the simulation does not follow the model."), findings
+    if tavg is None:
+        return "incomplete", "INCOMPLETE: no draw was kept yet (the run stopped inside the burn-in).", findings
+    worst_rhat = np.nanmax(rh) if rh is not None and not np.all(np.isnan(rh)) else None
+    if disagree:
+        k = len(disagree)
+        msg = (f"MISLEADING: the time average disagrees with the long-run law (TV {tv_avg:.3g}; "
+               f"{k} state{'s' if k != 1 else ''} beyond {z_crit:.2f} standard errors)")
+        if tv_win is not None and tv_win > 0 and mc is not None:
+            msg += "; the run is too short or its burn-in too small for this start"
+        if worst_rhat is not None and worst_rhat > RHAT_THRESHOLD:
+            msg += f"; R-hat up to {_fmt_rhat(worst_rhat)}"
+        return "misleading", msg + ".", findings
+    if mc is None:
+        return "uncertain", (f"UNCERTAIN: time average at TV {tv_avg:.3g} from the long-run law, but too few "
+                             "replicates or batches to estimate its error."), findings
+    if worst_rhat is not None and worst_rhat > RHAT_THRESHOLD:
+        return "uncertain", (f"UNCERTAIN: the time average is within its errors of the long-run law (TV "
+                             f"{tv_avg:.3g}), but R-hat up to {_fmt_rhat(worst_rhat)} says the replicates "
+                             "have not mixed."), findings
+    return "consistent", (f"CONSISTENT: the time average matches the long-run law within its Monte Carlo error "
+                          f"(TV {tv_avg:.3g}) and R-hat <= {RHAT_THRESHOLD}."), findings
+
+
+def _fmt_rhat(x: float) -> str:
+    return "infinity" if np.isinf(x) else f"{x:.3g}"
