@@ -15,7 +15,17 @@ from typing import Any, Generator
 
 import numpy as np
 
-__all__ = ["Progress", "StartFacts", "LongRunReport", "analyze", "iter_analyze", "CAUTION", "PASSAGE_LIMIT"]
+__all__ = [
+    "Progress",
+    "StartFacts",
+    "LongRunReport",
+    "analyze",
+    "iter_analyze",
+    "analyze_matrix",
+    "iter_analyze_matrix",
+    "CAUTION",
+    "PASSAGE_LIMIT",
+]
 
 #: Closed classes up to this size get the full mean first passage matrix
 #: (about m^3 flops); Kemeny's constant of larger ones comes from the spectrum.
@@ -198,6 +208,28 @@ def iter_analyze(chain, *, epsilon: float = 0.25, start: int | None = None
     Returns the :class:`LongRunReport` as the generator's return value
     (``StopIteration.value``; ``yield from`` gives it directly).
     """
+    P = chain.matrix()
+    return (yield from iter_analyze_matrix(
+        P, ids=chain.ids, labels=tuple(st.display_name for st in chain.states), name=chain.name,
+        step=chain.step, epsilon=epsilon, start=start))
+
+
+def iter_analyze_matrix(P, *, ids=None, labels=None, name: str = "", step=None, epsilon: float = 0.25,
+                        start: int | None = None) -> Generator[Progress, None, LongRunReport]:
+    """The analysis of a row-stochastic matrix (no chain object), as a generator.
+
+    Parameters
+    ----------
+    P : (n, n) array_like
+        Row-stochastic matrix (assumed valid: the chain's validation is the
+        place that checks it).
+    ids, labels : sequence of str, optional
+        State ids and display names (default ``"s0", "s1", ...``).
+    name : str
+    step : core.model.Step, optional
+    epsilon, start
+        As for :func:`analyze`.
+    """
     from .evolution import PowerLadder, mixing, mixing_time_from
     from .passage import absorption, limit_matrix, mean_first_passage
     from .spectral import spectrum
@@ -209,8 +241,10 @@ def iter_analyze(chain, *, epsilon: float = 0.25, start: int | None = None
         from .errors import OptionError
 
         raise OptionError(f"epsilon must be between 0 and 1 (exclusive), not {epsilon!r}")
-    P = chain.matrix()
+    P = np.asarray(P, dtype=np.float64)
     n = P.shape[0]
+    ids = tuple(f"s{i}" for i in range(n)) if ids is None else tuple(ids)
+    labels = ids if labels is None else tuple(labels)
     if start is not None and not 0 <= int(start) < n:
         from .errors import OptionError
 
@@ -265,10 +299,10 @@ def iter_analyze(chain, *, epsilon: float = 0.25, start: int | None = None
         )
     yield Progress("done", total, total)
     return LongRunReport(
-        name=chain.name,
-        ids=tuple(chain.ids),
-        labels=tuple(st.display_name for st in chain.states),
-        step=chain.step,
+        name=name,
+        ids=ids,
+        labels=labels,
+        step=step,
         epsilon=eps,
         structure=s,
         stationary=laws,
@@ -281,6 +315,19 @@ def iter_analyze(chain, *, epsilon: float = 0.25, start: int | None = None
         passage=tuple(passage),
         start=facts,
     )
+
+
+def _drive(gen):
+    while True:
+        try:
+            next(gen)
+        except StopIteration as stop:
+            return stop.value
+
+
+def analyze_matrix(P, **options) -> LongRunReport:
+    """:func:`analyze` for a bare matrix; options as for :func:`iter_analyze_matrix`."""
+    return _drive(iter_analyze_matrix(P, **options))
 
 
 def analyze(chain, *, epsilon: float = 0.25, start: int | None = None) -> LongRunReport:
@@ -307,12 +354,7 @@ def analyze(chain, *, epsilon: float = 0.25, start: int | None = None) -> LongRu
     >>> r.to_json()["stationary"][0]["law"]
     {'up': 0.3333333333333333, 'down': 0.6666666666666666}
     """
-    gen = iter_analyze(chain, epsilon=epsilon, start=start)
-    while True:
-        try:
-            next(gen)
-        except StopIteration as stop:
-            return stop.value
+    return _drive(iter_analyze(chain, epsilon=epsilon, start=start))
 
 
 # -- readable report ---------------------------------------------------------

@@ -102,7 +102,7 @@ def absorption(P, structure=None) -> Absorption:
     Examples
     --------
     >>> a = absorption([[1, 0, 0], [0.5, 0, 0.5], [0, 0, 1]])
-    >>> a.probabilities[1], a.expected_steps[1]
+    >>> a.probabilities[1], float(a.expected_steps[1])
     (array([0.5, 0.5]), 1.0)
     """
     from scipy.linalg import solve_triangular
@@ -265,6 +265,14 @@ def _mfpt_rec(A: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     m = A.shape[0]
     if m == 1:
         return np.zeros((1, 1)), h.copy()
+    if m == 2:
+        # two states: leave i with probability a_ij per step of mean length h_i
+        a01, a10 = A[0, 1], A[1, 0]
+        if not (a01 > 0 and a10 > 0):
+            raise ArithmeticError("mean first passage: the chain is not irreducible")
+        M = np.array([[0.0, h[0] / a01], [h[1] / a10, 0.0]])
+        ret = np.array([h[0] + a01 * h[1] / a10, h[1] + a10 * h[0] / a01])
+        return M, ret
     M = np.zeros((m, m))
     ret = np.empty(m)
     m1 = m // 2

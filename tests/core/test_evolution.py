@@ -1,4 +1,5 @@
 """Law at step t (huge t), total variation, d(t), mixing time."""
+import itertools
 from fractions import Fraction as F
 from math import comb
 
@@ -33,7 +34,7 @@ def test_tv_distance_definitions():
     mu = np.array([0.5, 0.3, 0.2, 0.0])
     nu = np.array([0.1, 0.3, 0.4, 0.2])
     best = max(abs(mu[list(A)].sum() - nu[list(A)].sum())
-               for r in range(5) for A in __import__("itertools").combinations(range(4), r))
+               for r in range(5) for A in itertools.combinations(range(4), r))
     assert tv_distance(mu, nu) == pytest.approx(best, rel=1e-15)
     assert tv_distance(mu, mu) == 0
 
