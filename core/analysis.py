@@ -434,6 +434,9 @@ def _format_text(r: LongRunReport, *, max_rows: int) -> str:
     # classes
     L.append("Classes")
     for k, cls in enumerate(s.classes):
+        if k == max_rows:
+            L.append(f"  ... {len(s.classes) - max_rows} more classes (use --json for all)")
+            break
         kind = "closed" if cls.closed else "transient"
         if cls.closed and cls.size == 1:
             kind = "absorbing"
@@ -457,6 +460,10 @@ def _format_text(r: LongRunReport, *, max_rows: int) -> str:
 
     # stationary laws
     for m, (k, pi) in enumerate(zip(s.closed, r.stationary)):
+        if m == max_rows:
+            L.append(f"... {len(s.closed) - max_rows} more closed classes (use --json for all)")
+            L.append("")
+            break
         cls = s.classes[k]
         if cls.size == 1:
             L.append(f"Absorbing state {_name(r, cls.states[0])} (class [{k}]): once entered, never left")

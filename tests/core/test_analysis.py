@@ -164,3 +164,24 @@ def test_every_sample_model_is_analysed(path):
     for pi in r.stationary:
         assert np.max(np.abs(pi @ P - pi)) <= 1e-15
     assert "Caution:" in r.to_text()
+
+
+@pytest.mark.parametrize(
+    "steps, step, text",
+    [
+        # durations use the Julian year of 365.25 days and a month of 1/12 of it (common practice)
+        (1e12, Step(1, "day"), "1.00e12 steps (~2.74 billion years at 1 day per step)"),
+        (3.4, Step(1, "week"), "3.4 steps (~3.4 weeks at 1 week per step)"),
+        (90, Step(15, "min"), "90 steps (~22.5 hours at 15 min per step)"),
+        (1, Step(1, "day"), "1 step (~1 day at 1 day per step)"),
+        (40, Step(1, "inspection"), "40 steps (40 inspections)"),
+        (2.5, Step(2, "cycles"), "2.5 steps (5 cycles)"),
+        (12345, None, "12,345 steps"),
+        (None, None, "not defined"),
+        (float("inf"), None, "never (infinitely many steps)"),
+    ],
+)
+def test_format_steps(steps, step, text):
+    from core.units import format_steps
+
+    assert format_steps(steps, step) == text

@@ -210,3 +210,21 @@ def test_eigenvalues_match_numpy_on_random_chain():
     assert abs(np.sum(s.eigenvalues**2) - np.trace(P @ P)) <= 1e-12
     ref = np.sort(np.abs(np.linalg.eigvals(P)))
     assert s.slem == pytest.approx(ref[-2], rel=1e-12)
+
+
+def test_birth_death_chain_is_reversible():
+    # LPW 2nd ed. §2.5 (seen): every birth-death chain satisfies detailed balance. Fixture of the
+    # reference list E9 (LPW Prop. 2.8): p = (1/3, 1/2, 2/5, 1/4), q = (., 1/6, 1/4, 1/2, 3/4).
+    p = [1 / 3, 1 / 2, 2 / 5, 1 / 4]
+    q = [0, 1 / 6, 1 / 4, 1 / 2, 3 / 4]
+    P = np.zeros((5, 5))
+    for k in range(5):
+        if k < 4:
+            P[k, k + 1] = p[k]
+        if k > 0:
+            P[k, k - 1] = q[k]
+        P[k, k] = 1 - P[k].sum()
+    s = spectrum(P)
+    assert s.reversible and s.balance_violation <= 1e-14
+    assert np.all(np.abs(s.eigenvalues.imag) == 0)  # reversible: real spectrum (LPW Lemma 12.2)
+    assert s.bounds.lower <= mixing_time(P) <= s.bounds.upper
