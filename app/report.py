@@ -87,11 +87,11 @@ SUFFIXES = {".html": "html", ".htm": "html", ".pdf": "pdf"}
 DEFAULT_MAX_MB = 25.0
 
 #: Chart size in CSS pixels (HTML) and logical pixels (PDF, at 96 per inch).
-CHART_W, CHART_H = 680, 300
+CHART_W, CHART_H = 640, 290
 #: Raster scale of charts and the picture in the PDF (3 x 96 = 288 dpi).
 PDF_SCALE = 3
 #: Largest side of the chain picture in the PDF, in logical pixels.
-PICTURE_MAX = (680, 470)
+PICTURE_MAX = (640, 440)
 
 _FONT_PREFERENCE = ("Inter", "Source Sans 3", "Source Sans Pro", "Segoe UI", "Helvetica Neue",
                     "Helvetica", "Arial", "Liberation Sans", "Noto Sans", "DejaVu Sans")
@@ -310,11 +310,12 @@ def _paint_bar(p: QPainter, W: float, H: float, chart: BarChart) -> None:
                     p.drawLine(QPointF(cx - cap, hi), QPointF(cx + cap, hi))
             if value_labels:
                 txt = f"{v:.3g}" if v >= 1e-3 or v == 0 else f"{v:.1e}"
-                p.setFont(tiny)
-                p.setPen(INK_SOFT)
                 tw = fm_tiny.horizontalAdvance(txt)
-                ty = ypix(v + (s.errors[i] if s.errors else 0.0)) - 3
-                p.drawText(QPointF(r.center().x() - tw / 2, ty), txt)
+                if tw <= bar_w + 2:
+                    p.setFont(tiny)
+                    p.setPen(INK_SOFT)
+                    ty = ypix(v + (s.errors[i] if s.errors else 0.0)) - 3
+                    p.drawText(QPointF(r.center().x() - tw / 2, ty), txt)
         # category label
         p.setFont(tiny)
         p.setPen(INK)
@@ -374,7 +375,7 @@ def _paint_line(p: QPainter, W: float, H: float, chart: LineChart) -> None:
     xs += [m.value for m in chart.markers if m.axis == "x" and m.value > 0]
     floor = chart.y_floor or 1e-6
     lx0 = math.floor(math.log10(min(xs)) + 1e-12) if xs else 0
-    lx1 = math.ceil(math.log10(max(xs)) - 1e-12) if xs else 1
+    lx1 = math.log10(max(xs)) + 0.03 if xs else 1
     if lx1 <= lx0:
         lx1 = lx0 + 1
     ly0 = math.floor(math.log10(floor) + 1e-12)
@@ -384,7 +385,9 @@ def _paint_line(p: QPainter, W: float, H: float, chart: LineChart) -> None:
     ylabels = [_decade_text(k) for k in range(ly0, ly1 + 1)]
     left = max(fm.horizontalAdvance(t) for t in ylabels) + 30
     right = 14
-    top = 10
+    vmarks = [m for m in chart.markers if m.axis == "x"]
+    row_h = fm_tiny.height() + 4
+    top = 8 + row_h * min(2, len(vmarks))   # a band above the plot for the labels of vertical lines
     bottom = fm_tiny.height() + fm.height() + 18
     plot = QRectF(left, top, W - left - right, H - top - bottom)
 
@@ -396,13 +399,15 @@ def _paint_line(p: QPainter, W: float, H: float, chart: LineChart) -> None:
         return plot.bottom() - (math.log10(y) - ly0) / (ly1 - ly0) * plot.height()
 
     # grid
-    xdec = lx1 - lx0
+    xdec = math.ceil(lx1) - lx0
     xevery = 1 if xdec <= 8 else 2 if xdec <= 16 else 3
     ydec = ly1 - ly0
     yevery = 1 if ydec <= 8 else 2
-    for k in range(lx0, lx1 + 1):
-        if xdec <= 10 and k < lx1:
+    for k in range(lx0, math.floor(lx1) + 1):
+        if xdec <= 10:
             for m in range(2, 10):
+                if math.log10(m) + k > lx1:
+                    break
                 x = xp(m * 10.0 ** k)
                 p.setPen(QPen(GRID_MINOR, 1))
                 p.drawLine(QPointF(x, plot.top()), QPointF(x, plot.bottom()))
@@ -414,7 +419,7 @@ def _paint_line(p: QPainter, W: float, H: float, chart: LineChart) -> None:
             p.setPen(INK_SOFT)
             t = _decade_text(k)
             tw = fm_tiny.horizontalAdvance(t)
-            p.drawText(QPointF(x - tw / 2, plot.bottom() + 5 + fm_tiny.ascent()), t)
+            p.drawText(QPointF(min(x - tw / 2, W - tw - 2), plot.bottom() + 5 + fm_tiny.ascent()), t)
     for k in range(ly0, ly1 + 1):
         if ydec <= 6 and k < ly1:
             for m in range(2, 10):
@@ -447,33 +452,40 @@ def _paint_line(p: QPainter, W: float, H: float, chart: LineChart) -> None:
     # the curve(s), clipped to the plot
     p.save()
     p.setClipRect(plot.adjusted(-1, -1, 1, 1))
+    def yraw(y: float) -> float:  # unclamped: the clip cuts a curve that drops below the grid
+        ly = math.log10(y) if y > 0 else ly0 - 4
+        return plot.bottom() - (max(ly, ly0 - 4) - ly0) / (ly1 - ly0) * plot.height()
+
     for s in chart.series:
-        pts = [QPointF(xp(x), yp(y)) for x, y in zip(s.x, s.y) if x > 0]
+        pts = [QPointF(xp(x), yraw(y)) for x, y in zip(s.x, s.y) if x > 0]
         pen = QPen(BLUE, 2.2)
         pen.setJoinStyle(Qt.PenJoinStyle.RoundJoin)
         p.setPen(pen)
         if len(pts) > 1:
             p.drawPolyline(QPolygonF(pts))
-    # markers
-    labels: list[QRectF] = []
+    # reference lines; the horizontal one is labelled at the end farther from the curve
     for m in chart.markers:
         colour, dash = _MARKER_STYLE.get(m.role, (INK_SOFT, Qt.PenStyle.DashLine))
-        pen = QPen(colour, 1.6, dash)
-        p.setPen(pen)
+        p.setPen(QPen(colour, 1.6, dash))
         if m.axis == "y":
             y = yp(m.value)
             p.drawLine(QPointF(plot.left(), y), QPointF(plot.right(), y))
             p.setFont(tiny)
             tw = fm_tiny.horizontalAdvance(m.label)
-            r = QRectF(plot.right() - tw - 6, y - fm_tiny.height() - 2, tw + 4, fm_tiny.height())
-            _label_box(p, r, m.label, colour, tiny)
-            labels.append(r)
+            at_left = True
+            s0 = next((s for s in chart.series if s.y), None)
+            if s0 is not None:
+                def gap(v):
+                    return abs(math.log10(max(v, 10.0 ** ly0)) - math.log10(m.value))
+                at_left = gap(s0.y[0]) >= gap(s0.y[-1])
+            x0 = plot.left() + 6 if at_left else plot.right() - tw - 10
+            _label_box(p, QRectF(x0, y - fm_tiny.height() - 2, tw + 4, fm_tiny.height()), m.label, colour, tiny)
         else:
             x = xp(m.value)
-            p.drawLine(QPointF(x, plot.top()), QPointF(x, plot.bottom()))
-    for m in chart.markers:
-        if m.axis != "x":
-            continue
+            p.drawLine(QPointF(x, plot.top() - 4), QPointF(x, plot.bottom()))
+    p.restore()
+    # points on the curve, then the labels of the vertical lines in the band above the plot
+    for m in vmarks:
         colour, _dash = _MARKER_STYLE.get(m.role, (INK_SOFT, Qt.PenStyle.DashLine))
         x = xp(m.value)
         if m.point is not None:
@@ -486,17 +498,41 @@ def _paint_line(p: QPainter, W: float, H: float, chart: LineChart) -> None:
                                          QPointF(c.x(), c.y() + d), QPointF(c.x() - d, c.y())]))
             else:
                 p.drawEllipse(c, 5.0, 5.0)
-        p.setFont(tiny)
+    h = fm_tiny.height()
+    base = plot.top() - 6 - h
+    options = []
+    for m in vmarks:
+        x = xp(m.value)
         tw = fm_tiny.horizontalAdvance(m.label)
-        h = fm_tiny.height()
-        r = QRectF(x + 5, plot.top() + 4, tw + 6, h)
-        if r.right() > plot.right():
-            r.moveRight(x - 5)
-        while any(r.intersects(o) for o in labels):
-            r.translate(0, h + 3)
+        cands = []
+        for row in range(2 if len(vmarks) > 1 else 1):
+            for side in ("right", "left"):
+                r = QRectF(x - 3, base - row * row_h, tw + 6, h)
+                if side == "left":
+                    r.moveRight(x + 3)
+                if r.left() >= 2 and r.right() <= W - 2:
+                    cands.append((r, QRectF(x - 1, r.bottom(), 2, plot.top() - r.bottom())))
+        if not cands:
+            r = QRectF(min(max(2.0, x - 3), W - tw - 8), base, tw + 6, h)
+            cands.append((r, QRectF(x - 1, r.bottom(), 2, plot.top() - r.bottom())))
+        options.append(cands)
+
+    def clash(a, b) -> bool:
+        return (a[0].intersects(b[0]) or a[1].intersects(b[0]) or b[1].intersects(a[0]))
+
+    import itertools
+
+    chosen = [c[0] for c in options]
+    for combo in itertools.product(*options):
+        if not any(clash(combo[i], combo[j]) for i in range(len(combo)) for j in range(i)):
+            chosen = list(combo)
+            break
+    for m, (r, _stem) in zip(vmarks, chosen):
+        colour, _dash = _MARKER_STYLE.get(m.role, (INK_SOFT, Qt.PenStyle.DashLine))
+        x = xp(m.value)
         _label_box(p, r, m.label, colour, tiny)
-        labels.append(r)
-    p.restore()
+        p.setPen(QPen(colour, 1.2))
+        p.drawLine(QPointF(x, r.bottom()), QPointF(x, plot.top()))
 
 
 def _label_box(p: QPainter, r: QRectF, text: str, colour: QColor, font: QFont) -> None:
@@ -1014,8 +1050,9 @@ def _pdf_bytes(report: Report) -> tuple[bytes, int]:
     doc.setPageSize(QSizeF(page.width(), page.height() - footer_h))
     images = _ResourceImages(doc, report.chain)
     doc.setHtml(_qt_html(report, images))
-    pages = doc.pageCount()
     body_h = page.height() - footer_h
+    _keep_headings_with_next(doc, body_h)
+    pages = doc.pageCount()
 
     painter = QPainter()
     if not painter.begin(writer):
@@ -1051,6 +1088,82 @@ def _pdf_bytes(report: Report) -> tuple[bytes, int]:
     data = bytes(buf.data())
     buf.close()
     return data, pages
+
+
+def _keep_headings_with_next(doc: QTextDocument, page_h: float, *, passes: int = 60) -> None:
+    """Keep headings and captions with what follows them, and small boxes whole, across pages.
+
+    QTextDocument has no "keep with next": after layout, a heading or a table
+    caption whose next block (a paragraph's first lines, a chart, a table's
+    first row) lands on a later page gets a page break before it, and so does
+    a small table (a callout, a fact list) that would be split; the element
+    that followed then loses its own break.  The layout is checked again after
+    every move.
+    """
+    from PySide6.QtGui import QTextBlockFormat, QTextCursor, QTextFormat
+
+    AUTO = QTextFormat.PageBreakFlag.PageBreak_Auto
+    BEFORE = QTextFormat.PageBreakFlag.PageBreak_AlwaysBefore
+    layout = doc.documentLayout()
+
+    def page(y: float) -> int:
+        return int(y // page_h)
+
+    def table_of(block):
+        return QTextCursor(block).currentTable()
+
+    def clear_following(block) -> None:
+        nxt = block.next()
+        if not nxt.isValid():
+            return
+        t = table_of(nxt)
+        if t is not None and table_of(block) is None:
+            f = t.format()
+            if f.pageBreakPolicy() == BEFORE:
+                f.setPageBreakPolicy(AUTO)
+                t.setFormat(f)
+        elif nxt.blockFormat().pageBreakPolicy() == BEFORE:
+            f = QTextBlockFormat(nxt.blockFormat())
+            f.setPageBreakPolicy(AUTO)
+            QTextCursor(nxt).setBlockFormat(f)
+
+    for _ in range(passes):
+        moved = False
+        for frame in doc.rootFrame().childFrames():
+            r = layout.frameBoundingRect(frame)
+            if r.height() < 0.3 * page_h and page(r.top()) != page(r.bottom() - 1) and hasattr(frame, "format"):
+                f = frame.format()
+                if f.pageBreakPolicy() == AUTO:
+                    f.setPageBreakPolicy(BEFORE)
+                    frame.setFormat(f)
+                    moved = True
+                    break
+        if moved:
+            continue
+        block = doc.begin()
+        while block.isValid():
+            fmt = block.blockFormat()
+            nxt = block.next()
+            keep = nxt.isValid() and (fmt.headingLevel() in (2, 3) or (  # or a caption just above its table
+                table_of(block) is None and table_of(nxt) is not None))
+            if keep and fmt.pageBreakPolicy() == AUTO:
+                r = layout.blockBoundingRect(block)
+                n = layout.blockBoundingRect(nxt)
+                lay = nxt.layout()
+                follow_bottom = n.bottom()
+                if lay is not None and lay.lineCount():  # a pushed line keeps the block's top: use the lines
+                    line = lay.lineAt(min(2, lay.lineCount() - 1))
+                    follow_bottom = n.top() + line.y() + line.height()
+                if r.top() > 0 and page(follow_bottom) > page(r.top()):
+                    f = QTextBlockFormat(fmt)
+                    f.setPageBreakPolicy(BEFORE)
+                    QTextCursor(block).setBlockFormat(f)
+                    clear_following(block)
+                    moved = True
+                    break
+            block = nxt
+        if not moved:
+            return
 
 
 def render_pdf(report: Report) -> bytes:

@@ -150,9 +150,21 @@ def fmt_num(x: float, digits: int = 4) -> str:
 
 
 def _steps(t: float | None, step) -> str:
-    from .units import format_steps
+    """Steps and what they mean in the chain's unit, compactly: ``"1,462 steps (~122 years)"``.
 
-    return format_steps(t, step)
+    The step length itself is stated once in the report's facts, so it is not
+    repeated here; a unit that is not a time (``"voyage leg"``) gives a count
+    of that unit, as :func:`core.units.format_steps` does.
+    """
+    from .units import format_count, format_duration, format_steps, step_seconds
+
+    if t is None or step is None or not math.isfinite(float(t)):
+        return format_steps(t, step)
+    secs = step_seconds(step)
+    if secs is None:
+        return format_steps(t, step)
+    x = float(t)
+    return f"{format_count(x)} {'step' if x == 1 else 'steps'} (~{format_duration(x * secs)})"
 
 
 def _count(t: float) -> str:
@@ -439,9 +451,10 @@ def _display(chain, i: int) -> str:
     return s.id if not s.label or s.label == s.id else f"{s.id} ({s.label})"
 
 
-def _names(chain, idx: Sequence[int], limit: int = 12) -> str:
+def _names(chain, idx: Sequence[int], limit: int = 12, *, quote: bool = False) -> str:
     idx = list(idx)
-    shown = ", ".join(chain.ids[i] for i in idx[:limit])
+    q = _quote if quote else str
+    shown = ", ".join(q(chain.ids[i]) for i in idx[:limit])
     if len(idx) > limit:
         shown += f" and {len(idx) - limit} more"
     return shown
@@ -615,6 +628,7 @@ class _Ctx:
             else:
                 raise OptionError("the report needs a start state (an id or a row index), not a start law")
         self.analysis = self.findings = self.check = None
+        self.plan_remedy = ""
         if self.valid:
             from .analysis import analyze
             from .findings import find_all
@@ -1020,14 +1034,25 @@ class _Ctx:
     # -- findings ----------------------------------------------------------------
     def findings_section(self) -> Section:
         fs = self.findings
+        told = ""
+        if self.check is not None:
+            plan_f = [f for f in fs if f.code == "plan-misleading"]
+            if plan_f:
+                self.plan_remedy = plan_f[0].remedy
+                fs = tuple(f for f in fs if f.code != "plan-misleading")
+                told = " The plan's own verdict is told in the next section, The simulation plan."
         if not fs:
+            if told:
+                return Section("findings", "Findings", (Paragraph(
+                    "Apart from the plan's verdict, nothing in the chain is known to mislead a "
+                    "simulation." + told, "lead"),))
             return Section("findings", "Findings", (Paragraph(
                 "No findings: the chain has one aperiodic closed class, no rare transitions and mixes "
                 "quickly; nothing in it is known to mislead a simulation.", "lead"),))
         blocks: list = [Paragraph(
             f"{_plural(len(fs), 'finding')} about what in this model"
             + (" and plan" if self.plan is not None else "")
-            + " can mislead, most serious first.", "lead")]
+            + " can mislead, most serious first." + told, "lead")]
         for f in fs:
             blocks.append(Callout(f.severity, f.title, f.explanation, detail=f.remedy, detail_label="What to do"))
         return Section("findings", "Findings", tuple(blocks))
@@ -1100,7 +1125,8 @@ class _Ctx:
         blocks.append(Subheading("How long it must run instead"))
         blocks.append(Paragraph(self._how_long(ch)))
         blocks.append(self._tv_chart(ch))
-        blocks.append(Callout(ch.verdict, "Verdict: sound" if ch.sound else "Verdict: misleading", ch.sentence))
+        blocks.append(Callout(ch.verdict, "Verdict: sound" if ch.sound else "Verdict: misleading", ch.sentence,
+                              detail=self.plan_remedy, detail_label="What to do" if self.plan_remedy else ""))
         blocks.append(Paragraph(
             "Exact plan check: the estimate's limiting law pi0 P^(B+T) (final step) or the average of "
             "pi0 P^(B+js) (time average) computed by doubling, compared in total variation with the "
@@ -1120,7 +1146,7 @@ class _Ctx:
                 f"{fmt_pct(tv)} of all time, and no other question about shares can be off by more.")
         if tv > 0 and over.size and under.size:
             text += (f" Here the simulation gives too much weight, {fmt_pct(tv)} in total, to "
-                     f"{_names(c, over, 6)}, and the same too little to {_names(c, under, 6)}.")
+                     f"{_names(c, over, 6, quote=True)}, and the same too little to {_names(c, under, 6, quote=True)}.")
         text += f" The tolerance is {fmt_num(plan.tolerance, 3)}, so the plan is {ch.verdict}."
         if not ch.sound:
             if tv > NOISE_SD * noise:
@@ -1163,7 +1189,7 @@ class _Ctx:
         step = self.step
         lo = plan.stride if plan.estimator == "average" else 1
         hi = max(plan.steps, ch.min_steps or 0, 10)
-        hi = hi * 20 if ch.min_steps is not None else max(hi * 100, 1000)
+        hi = hi * 6 if ch.min_steps is not None else max(hi * 100, 1000)
         hi = int(min(hi, MAX_STEPS // 2))
         n = self.chain.n
         points = CURVE_POINTS
@@ -1181,14 +1207,15 @@ class _Ctx:
                            for t in grid])
         markers = [
             Marker("y", plan.tolerance, f"tolerance {plan.tolerance:g}", "tolerance"),
-            Marker("x", plan.steps, f"planned: {_steps(plan.steps, step)}", "plan", point=float(ch.tv)),
+            Marker("x", plan.steps, f"planned {_steps(plan.steps, step)}", "plan", point=float(ch.tv)),
         ]
         if ch.min_steps is not None:
             i = int(np.searchsorted(grid, ch.min_steps))
             markers.append(Marker("x", ch.min_steps, f"sound from {_steps(ch.min_steps, step)}", "sound",
                                   point=float(ys[i])))
+        # the grid reaches down to a fiftieth of the tolerance (closer is "sound" anyway)
         positive = ys[ys > 0]
-        floor = max(float(positive.min()) if positive.size else plan.tolerance / 100, 1e-12, plan.tolerance / 1e4)
+        floor = max(float(positive.min()) if positive.size else 0.0, plan.tolerance / 50)
         unit = f" (1 step = {step.value:g} {step.unit})" if step is not None else ""
         return LineChart(
             title="Distance of the simulation's answer from the truth, by run length",
