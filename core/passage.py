@@ -126,7 +126,7 @@ def absorption(P, structure=None) -> Absorption:
             st = list(structure.classes[k].states)
             R[:, m] = P[np.ix_(T, st)].sum(axis=1)
         X = np.hstack([R, np.ones((T.size, 1))])
-        E = eliminate(Q, X, nprob=c)
+        E = eliminate(Q, X, nprob=c, overwrite=True)
         Lw = E.lower()
         Y = solve_triangular(Lw, E.X, lower=True, check_finite=False)
         B = np.maximum(Y[:, :c], 0.0)
@@ -280,7 +280,7 @@ def _mfpt_rec(A: np.ndarray, h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     for keep, drop in (halves, halves[::-1]):
         perm = np.concatenate([keep, drop])
         k = keep.size
-        E = eliminate(A[np.ix_(perm, perm)], h[perm].reshape(-1, 1), nprob=0, stop=k)
+        E = eliminate(A[np.ix_(perm, perm)], h[perm].reshape(-1, 1), nprob=0, stop=k, overwrite=True)
         Mk, rk = _mfpt_rec(E.A[:k, :k].copy(), E.X[:k, 0].copy())
         # back substitution for the eliminated states, all targets in `keep` at once:
         # s_g m_gj - sum_{g' < g} a_gg' m_g'j = h_g + sum_{l in keep} a_gl m_lj
