@@ -1175,7 +1175,10 @@ class SimulationReport:
     mcse : core.diagnostics.MCSE or None
         Standard errors and effective sample sizes of the time average.
     z : (n,) ndarray or None
-        ``(time average - long-run law) / mcse``.
+        ``(time average - long-run law) / se`` with ``se`` the larger of the
+        MCSE and the i.i.d. binomial error ``sqrt(pi_j (1 - pi_j) / (R N))`` at
+        the long-run probability (a zero MCSE only says that every tracked
+        replicate saw the same value, e.g. a state none of them visited).
     z_crit : float
         Bonferroni threshold for ``|z|`` at family-wise rate :data:`FAMILY_ALPHA`.
     disagree : tuple of int
@@ -1412,8 +1415,11 @@ def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 
     disagree: tuple = ()
     if mc is not None:
         diff = tavg - long_run
+        # a zero MCSE only says the tracked replicates agreed: never test against less than the i.i.d.
+        # error at the long-run probability itself
+        se = np.maximum(mc.se, np.sqrt(np.clip(long_run * (1 - long_run), 0, None) / (R * result.kept)))
         with np.errstate(divide="ignore", invalid="ignore"):
-            z = np.where(mc.se > 0, diff / mc.se, np.where(np.abs(diff) > 1e-12, np.sign(diff) * np.inf, 0.0))
+            z = np.where(se > 0, diff / se, np.where(np.abs(diff) > 1e-12, np.sign(diff) * np.inf, 0.0))
         disagree = tuple(int(j) for j in np.flatnonzero(np.abs(z) > z_crit))
     rh, rs, rdraws, notes = _rhat_of(result)
 

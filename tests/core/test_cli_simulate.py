@@ -1,0 +1,131 @@
+"""`longrun simulate`: options, exit codes, messages, the --json contract, the progress bar."""
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from core.cli import main
+from core.commands import simulate as cmd
+
+ROOT = Path(__file__).resolve().parents[2]
+SAMPLE = ROOT / "sample_models" / "pump_wear.json"
+
+CONTRACT = ("steps", "replicates", "ensemble", "time_average", "exact_at_T", "long_run", "tv_ensemble",
+            "tv_time_average", "rhat", "seed")
+
+
+def _json(capsys, *argv):
+    assert main(["simulate", str(SAMPLE), *argv, "--json"]) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def test_json_contract_keys_and_values(capsys):
+    doc = _json(capsys, "-R", "200", "-T", "500", "--seed", "7")
+    for key in CONTRACT:
+        assert key in doc, key
+    ids = ["new", "worn", "degraded", "failed"]
+    assert doc["steps"] == 500 and doc["replicates"] == 200 and doc["seed"] == 7
+    assert list(doc["ensemble"]) == ids and sum(doc["ensemble"].values()) == 200
+    assert sum(doc["time_average"].values()) == pytest.approx(1.0)
+    assert sum(doc["exact_at_T"].values()) == pytest.approx(1.0)
+    assert sum(doc["long_run"].values()) == pytest.approx(1.0)
+    assert 0 <= doc["tv_ensemble"] <= 1 and 0 <= doc["tv_time_average"] <= 1
+    assert all(isinstance(v, float) for v in doc["rhat"].values())
+    assert doc["status"] in ("consistent", "uncertain", "misleading", "mismatch")
+    assert doc["start"] == {"new": 1.0}
+
+
+def test_json_is_reproducible_from_the_seed(capsys):
+    a = _json(capsys, "-R", "50", "-T", "300", "--seed", "123", "--burn-in", "10", "--stride", "2")
+    b = _json(capsys, "-R", "50", "-T", "300", "--seed", "123", "--burn-in", "10", "--stride", "2")
+    for d in (a, b):
+        d.pop("engine")
+    assert a == b
+    assert a["kept"] == (300 - 10 - 1) // 2 + 1
+
+
+def test_json_long_run_matches_the_exact_engine(capsys):
+    from core.io import load_chain
+    from core.passage import limit_law
+
+    doc = _json(capsys, "-R", "20", "-T", "100", "--seed", "1", "--start", "failed")
+    P = load_chain(SAMPLE).matrix()
+    want = limit_law(P, np.eye(4)[3])
+    assert list(doc["long_run"].values()) == pytest.approx(want.tolist(), abs=1e-15)
+    assert doc["start"] == {"failed": 1.0}
+
+
+def test_readable_output_has_table_distances_and_verdict(capsys):
+    assert main(["simulate", str(SAMPLE), "--replicates", "300", "--steps", "2000", "--seed", "5"]) == 0
+    out = capsys.readouterr().out
+    for sid in ("new", "worn", "degraded", "failed"):
+        assert any(line.strip().startswith(sid) for line in out.splitlines())
+    assert "ensemble vs pi0 P^T" in out and "time average vs long run" in out
+    lines = [ln for ln in out.splitlines() if ln.strip()]
+    assert lines[-2].split(":")[0] in ("CONSISTENT", "UNCERTAIN", "MISLEADING", "MISMATCH")
+    assert "the first state; choose with --start" in out
+    assert "not the world" in out  # the caution
+
+
+def test_uniform_start(capsys):
+    doc = _json(capsys, "-R", "40", "-T", "50", "--seed", "2", "--start", "uniform")
+    assert doc["start"] == {k: 0.25 for k in ("new", "worn", "degraded", "failed")}
+
+
+@pytest.mark.parametrize("argv,needle", [
+    (["--replicates", "0", "--steps", "10"], "--replicates/-R: must be at least 1"),
+    (["--replicates", "-5", "--steps", "10"], "replicates"),
+    (["--replicates", "2e6", "--steps", "10"], "replicates must be between 1 and 1e+06"),
+    (["--replicates", "10", "--steps", "0"], "must be at least 1"),
+    (["--replicates", "10", "--steps", "10", "--start", "boiler"], "--start 'boiler': no such state"),
+    (["--replicates", "10", "--steps", "10", "--burn-in", "10"], "burn_in (10) must be smaller than steps"),
+    (["--replicates", "10", "--steps", "10", "--memory-limit", "a lot"], "not a memory size"),
+    (["--replicates", "1e6", "--steps", "10", "--memory-limit", "10MB"], "over the memory limit"),
+])
+def test_bad_options_exit_2_with_a_clear_message(capsys, argv, needle):
+    try:
+        code = main(["simulate", str(SAMPLE), *argv])
+    except SystemExit as exc:  # argparse's own errors exit directly
+        code = exc.code
+    assert code == 2
+    err = capsys.readouterr().err
+    assert needle in err
+    assert "Traceback" not in err
+
+
+def test_memory_guard_from_environment(capsys, monkeypatch):
+    monkeypatch.setenv("LONGRUN_SIMULATE_MEMORY", "1MiB")
+    assert main(["simulate", str(SAMPLE), "-R", "100000", "-T", "10"]) == 2
+    err = capsys.readouterr().err
+    assert "memory limit of 1 MiB" in err and "--memory-limit" in err
+
+
+def test_invalid_chain_exits_2(tmp_path, capsys):
+    f = tmp_path / "bad.json"
+    f.write_text(json.dumps({"format": "longrun-chain", "version": 1, "states": [{"id": "a"}],
+                             "transitions": [{"from": "a", "to": "a", "p": "0.5"}]}))
+    assert main(["simulate", str(f), "-R", "5", "-T", "5"]) == 2
+    assert "not valid" in capsys.readouterr().err
+
+
+def test_no_progress_bar_when_stderr_is_not_a_terminal(capsys, monkeypatch):
+    monkeypatch.setattr(cmd, "PROGRESS_AFTER", 0.0)
+    assert main(["simulate", str(SAMPLE), "-R", "100", "-T", "3000", "--seed", "1"]) == 0
+    assert capsys.readouterr().err == ""
+
+
+def test_progress_bar_on_a_terminal_but_never_with_json(capsys, monkeypatch):
+    monkeypatch.setattr(cmd, "PROGRESS_AFTER", 0.0)
+    monkeypatch.setattr(cmd, "stderr_is_tty", lambda: True)
+    assert main(["simulate", str(SAMPLE), "-R", "100", "-T", "3000", "--seed", "1"]) == 0
+    err = capsys.readouterr().err
+    assert "replicate-steps/s" in err and "100.0%" in err and err.endswith("\r")
+    assert main(["simulate", str(SAMPLE), "-R", "100", "-T", "3000", "--seed", "1", "--json"]) == 0
+    assert capsys.readouterr().err == ""
+
+
+def test_progress_bar_waits_about_a_second(capsys, monkeypatch):
+    monkeypatch.setattr(cmd, "stderr_is_tty", lambda: True)
+    assert main(["simulate", str(SAMPLE), "-R", "10", "-T", "100", "--seed", "1"]) == 0
+    assert capsys.readouterr().err == ""  # a run this short never shows a bar
