@@ -720,7 +720,7 @@ caption { caption-side: top; text-align: left; color: var(--soft); font-size: 13
 th { text-align: left; font-weight: 600; font-size: 12px; text-transform: uppercase; letter-spacing: .04em;
      color: var(--soft); border-bottom: 2px solid var(--ink); padding: 6px 10px 5px; vertical-align: bottom; }
 td { padding: 5px 10px; border-bottom: 1px solid var(--rule); vertical-align: top; overflow-wrap: anywhere; }
-td.r, th.r { text-align: right; white-space: nowrap; }
+td.r, th.r { text-align: right; } td.r { white-space: nowrap; }
 table.matrix td, table.matrix th { padding: 4px 7px; }
 table.matrix th.rowhead, table.matrix td.rowhead { text-align: left; font-weight: 600; color: var(--ink);
      text-transform: none; letter-spacing: 0; font-size: 13px; }
@@ -740,6 +740,7 @@ figure { margin: 12px 0 20px; }
 figure .frame { border: 1px solid var(--rule); border-radius: 4px; padding: 10px; background: #fff; }
 figure.picture .frame { background: #FBFBF9; }
 figure img { display: block; max-width: 100%%; height: auto; margin: 0 auto; }
+figure.chart img { width: 100%%; }
 figcaption { font-size: 13px; color: var(--soft); margin-top: 6px; }
 figcaption b { color: var(--ink); }
 footer { margin-top: 40px; padding-top: 10px; border-top: 1px solid var(--rule); font-size: 12px;

@@ -750,8 +750,8 @@ class _Ctx:
         blocks.append(Facts(tuple(facts)))
         if 0 < c.n <= self.max_states:
             blocks.append(ChainPicture(
-                "The chain as drawn in the editor: circles are states, arrows transitions with their "
-                "probabilities as written.", c.n))
+                "As laid out in the editor: circles are states, arrows are transitions labelled with "
+                "their probabilities as written.", c.n))
         elif c.n:
             blocks.append(Paragraph(
                 f"The picture of the chain is left out: {c.n:,} states are more than the "
@@ -1111,7 +1111,7 @@ class _Ctx:
                          ("+" if b > 0 else "") + fmt_prob(b), fmt_prob(ch.noise_sd[i])))
             big = abs(b) > NOISE_SD * ch.noise_sd[i] and abs(b) > plan.tolerance / max(2, n)
             emph.append(("", "", "", "bad" if big and not ch.sound else "", ""))
-        blocks.append(Table(("state", "simulation would report", "long run (truth)", "error", "noise (1 sd)"),
+        blocks.append(Table(("state", "simulation reports", "truth (long run)", "error", "noise (1 sd)"),
                             tuple(rows), ("left", "right", "right", "right", "right"),
                             caption="Error = what the simulation would report minus the truth.",
                             note=(f"The {MAX_LISTED} largest errors of {n:,} states are listed." if n > MAX_LISTED else ""),
