@@ -26,12 +26,41 @@ def add_arguments(parser):
     parser.add_argument("--start", metavar="ID", default=None, help="also report what happens from this start state")
 
 
+def findings_text(findings) -> str:
+    """The findings as an indented, wrapped text section (empty string if none)."""
+    import textwrap
+
+    if not findings:
+        return "Findings\n  none: the chain is valid, and nothing in it calls for care in simulation.\n"
+    lines = ["Findings"]
+    wrap = textwrap.TextWrapper(width=96, initial_indent="    ", subsequent_indent="    ")
+    for f in findings:
+        lines.append(f"  [{f.severity}] {f.title}")
+        lines.extend(wrap.wrap(f.explanation))
+        if f.remedy:
+            lines.extend(wrap.wrap("What to do: " + f.remedy))
+    return "\n".join(lines) + "\n"
+
+
 def run(args) -> int:
     from ..analysis import analyze
+    from ..findings import find_all
     from ..jsonout import dumps
 
     chain = load_valid(args)
     start = state_index(chain, args.start, option="--start")
     report = analyze(chain, epsilon=args.epsilon, start=start)
-    write_stdout(dumps(report.to_json()) if args.json else report.to_text())
+    findings = find_all(chain, start=start, epsilon=args.epsilon)
+    if args.json:
+        doc = report.to_json()
+        doc["findings"] = [f.to_json(chain.ids) for f in findings]
+        write_stdout(dumps(doc))
+        return 0
+    text = report.to_text()
+    head, sep, tail = text.rpartition("\nCaution:")
+    if sep:
+        text = f"{head.rstrip()}\n\n{findings_text(findings)}{sep}{tail}"
+    else:
+        text = f"{text.rstrip()}\n\n{findings_text(findings)}"
+    write_stdout(text)
     return 0

@@ -103,3 +103,22 @@ def test_bad_epsilon(tmp_path, capsys, eps):
     assert exc.value.code == 2
     err = capsys.readouterr().err
     assert "--epsilon" in err and "Traceback" not in err
+
+
+def test_analyze_json_carries_findings_and_text_lists_them(capsys):
+    """The findings of the findings engine appear in both outputs (issue contract)."""
+    import json as _json
+    from pathlib import Path as _Path
+
+    from core.cli import main as _main
+
+    sample = _Path(__file__).resolve().parents[2] / "sample_models" / "tanker_rotation.json"
+    assert _main(["analyze", str(sample), "--json"]) == 0
+    doc = _json.loads(capsys.readouterr().out)
+    (f,) = [f for f in doc["findings"] if f["code"] == "periodic"]
+    assert f["severity"] == "warning" and set(f["states"]) == set(doc["states"])
+    assert {"code", "severity", "title", "states"} <= set(f)
+    assert _main(["analyze", str(sample)]) == 0
+    text = capsys.readouterr().out
+    assert "Findings\n  [warning] The chain cycles with period 3" in text
+    assert text.rstrip().splitlines()[-1].startswith("Caution:")
