@@ -73,7 +73,7 @@ GRID_STATES = 12
 #: Most bars in one chart (the largest values are kept, the rest summarised).
 MAX_BARS = 24
 #: Most rows in a per-state table below the matrix (largest values first).
-MAX_LISTED = 60
+MAX_LISTED = 40
 #: Error bars on the plan's estimate span this many standard deviations of the
 #: Monte Carlo noise (about 95 % for a normal estimate; common practice).
 NOISE_SD = 2
@@ -585,8 +585,9 @@ def build_report(
         Callout("caution", "Results describe the model, not the system", CAUTION),
         Paragraph(
             f"Prepared with Longrun {__version__} on {footer.generated} from {name}. "
-            f"SHA-256 of {sha_of}: {digest}. Every figure in this report is computed exactly "
-            "from the transition matrix (no simulation was run); figures are rounded for reading.",
+            f"SHA-256 of {sha_of}: {digest}."
+            + (" Every figure in this report is computed exactly from the transition matrix (no "
+               "simulation was run); figures are rounded for reading." if ctx.valid else ""),
             "note",
         ),
     )))
@@ -1149,7 +1150,10 @@ class _Ctx:
                      f"{_names(c, over, 6, quote=True)}, and the same too little to {_names(c, under, 6, quote=True)}.")
         text += f" The tolerance is {fmt_num(plan.tolerance, 3)}, so the plan is {ch.verdict}."
         if not ch.sound:
-            if tv > NOISE_SD * noise:
+            if noise == 0:
+                text += (" Every replicate would give exactly the same answer (there is no Monte Carlo noise "
+                         "here), so more replicates cannot help: the error is a bias of the plan itself.")
+            elif tv > NOISE_SD * noise:
                 text += (f" Monte Carlo noise with {plan.replicates:,} replicates is only about "
                          f"\u00b1{fmt_num(noise, 2)} per state: the error is a bias of the plan itself, so more "
                          "replicates would report the wrong answer more precisely, not fix it.")

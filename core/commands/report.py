@@ -105,7 +105,7 @@ def run(args) -> int:
     chain = load_any(args.file, max_states=args.max_states)
     if not chain.problems and args.start is not None:
         state_index(chain, args.start)  # a clear message for an unknown start
-    plan = _plan(args, chain) if not chain.problems else None
+    plan = _plan(args, chain)
     if chain.problems and args.steps is not None:
         print(f"{args.file}: the chain is not valid, so the plan is not checked; "
               "the report lists the problems", file=sys.stderr)
