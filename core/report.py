@@ -663,8 +663,8 @@ class _Ctx:
                                       "A plan can only be checked against a valid model."))
             return Section("summary", "Summary", tuple(blocks))
         facts = [("States", f"{c.n:,}"), ("Transitions", f"{len(c.exact_probabilities):,} with positive probability")]
-        if self.step is not None:
-            facts.append(("One step", f"{self.step.value:g} {self.step.unit}"))
+        facts.append(("One step", f"{self.step.value:g} {self.step.unit}" if self.step is not None
+                      else "no time unit given (steps only)"))
         facts.append(("Structure", self._structure_phrase()))
         facts.append(("Long run", self._long_run_phrase()))
         facts.append(("Mixing time", self._mixing_phrase(short=True)))
@@ -745,10 +745,11 @@ class _Ctx:
         blocks: list = []
         if c.description.strip():
             blocks.append(Paragraph(c.description.strip(), "lead"))
-        facts = [("Name", c.name or "(no name)"), ("States", f"{c.n:,}"),
-                 ("Transitions", f"{len(c.transitions):,} as written")]
-        facts.append(("One step", f"{c.step.value:g} {c.step.unit}" if c.step else "no time unit given (steps only)"))
-        blocks.append(Facts(tuple(facts)))
+        if not self.valid:  # a valid chain's key figures are in the summary already
+            facts = [("Name", c.name or "(no name)"), ("States", f"{c.n:,}"),
+                     ("Transitions", f"{len(c.transitions):,} as written")]
+            facts.append(("One step", f"{c.step.value:g} {c.step.unit}" if c.step else "no time unit given (steps only)"))
+            blocks.append(Facts(tuple(facts)))
         if 0 < c.n <= self.max_states:
             blocks.append(ChainPicture(
                 "As laid out in the editor: circles are states, arrows are transitions labelled with "
