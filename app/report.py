@@ -32,7 +32,7 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
-from PySide6.QtCore import QBuffer, QByteArray, QIODevice, QMarginsF, QPointF, QRectF, QSize, QSizeF, Qt, QUrl
+from PySide6.QtCore import QBuffer, QIODevice, QMarginsF, QPointF, QRectF, QSize, QSizeF, Qt, QUrl
 from PySide6.QtGui import (
     QBrush,
     QColor,
@@ -43,7 +43,6 @@ from PySide6.QtGui import (
     QPageLayout,
     QPageSize,
     QPainter,
-    QPainterPath,
     QPdfWriter,
     QPen,
     QPolygonF,
@@ -72,6 +71,7 @@ __all__ = [
     "DEFAULT_MAX_MB",
     "export_report",
     "export_document_report",
+    "write_report",
     "render_html",
     "render_pdf",
     "chart_image",
@@ -1265,15 +1265,30 @@ def export_report(chain, path, *, plan=None, start=None, epsilon: float = 0.25, 
     from core.report import MAX_TABLE_STATES
 
     out = Path(path)
-    fmt = _format_of(out)
+    _format_of(out)
     if str(out.parent) and not out.parent.exists():
         raise OptionError(f"{str(out)!r}: the folder {out.parent} does not exist")
     if out.is_dir():
         raise OptionError(f"{str(out)!r} is a folder; give a file name ending in .html or .pdf")
-    limit = max_report_bytes(max_mb)
+    max_report_bytes(max_mb)  # a bad limit is refused before the work starts
     report = build_report(chain, plan=plan, start=start, epsilon=epsilon, source=source, sha256=sha256,
                           generated=generated,
                           max_table_states=MAX_TABLE_STATES if max_table_states is None else max_table_states)
+    return write_report(report, out, max_mb=max_mb)
+
+
+def write_report(report: Report, path, *, max_mb: float | None = None) -> dict:
+    """Render a built :class:`~core.report.Report` by the suffix of ``path`` and write it atomically.
+
+    The app can build the report in a worker thread (:func:`core.report.build_report`
+    is Qt-free) and call this on the GUI thread, which draws the picture and charts.
+    Returns and raises as :func:`export_report`.
+    """
+    out = Path(path)
+    fmt = _format_of(out)
+    if str(out.parent) and not out.parent.exists():
+        raise OptionError(f"{str(out)!r}: the folder {out.parent} does not exist")
+    limit = max_report_bytes(max_mb)
     pages = None
     if fmt == "html":
         data = render_html(report).encode("utf-8")
