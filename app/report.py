@@ -1092,7 +1092,7 @@ def _pdf_bytes(report: Report) -> tuple[bytes, int]:
 
 
 def _keep_headings_with_next(doc: QTextDocument, page_h: float, *, passes: int = 60) -> None:
-    """Keep headings and captions with what follows them, and small boxes whole, across pages.
+    """Keep headings, captions and figures with what follows them, and small boxes whole, across pages.
 
     QTextDocument has no "keep with next": after layout, a heading or a table
     caption whose next block (a paragraph's first lines, a chart, a table's
@@ -1145,8 +1145,10 @@ def _keep_headings_with_next(doc: QTextDocument, page_h: float, *, passes: int =
         while block.isValid():
             fmt = block.blockFormat()
             nxt = block.next()
-            keep = nxt.isValid() and (fmt.headingLevel() in (2, 3) or (  # or a caption just above its table
-                table_of(block) is None and table_of(nxt) is not None))
+            keep = nxt.isValid() and (
+                fmt.headingLevel() in (2, 3)
+                or (table_of(block) is None and table_of(nxt) is not None)  # a caption just above its table
+                or block.text() == "\ufffc")  # a chart or the picture, kept with its caption below
             if keep and fmt.pageBreakPolicy() == AUTO:
                 r = layout.blockBoundingRect(block)
                 n = layout.blockBoundingRect(nxt)
