@@ -58,7 +58,7 @@ import os
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Iterator
+from typing import Generator, Iterator
 
 import numpy as np
 
@@ -80,6 +80,10 @@ __all__ = [
     "SimulationResult",
     "ReplicateSimulation",
     "run",
+    "iter_simulate",
+    "SimulationReport",
+    "compare",
+    "curve_grid",
 ]
 
 #: Largest number of replicates.
@@ -1215,6 +1219,20 @@ def run(P, **options) -> SimulationResult:
     return ReplicateSimulation(P, **options).run()
 
 
+def iter_simulate(P, *, every: int | None = None, chunk: int | None = None,
+                  **options) -> Generator[SimulationSnapshot, None, SimulationResult]:
+    """A run as a generator of snapshots that returns the :class:`SimulationResult`.
+
+    The result is the generator's return value (``StopIteration.value``;
+    ``yield from`` gives it directly).  Closing the generator stops the run
+    at the chunk boundary where it is suspended.  ``options`` are those of
+    :class:`ReplicateSimulation`.
+    """
+    sim = ReplicateSimulation(P, **options)
+    yield from sim.snapshots(every=every, chunk=chunk)
+    return sim.result()
+
+
 # ---------------------------------------------------------------------------
 # simulated next to exact
 
@@ -1229,6 +1247,8 @@ ENGINE_ALPHA = 1e-6
 MIN_REPLICATES_FOR_MCSE = 16
 #: Largest chain for which the exact mean of the kept draws is computed (O(n^3 log N)).
 EXACT_WINDOW_STATES = 400
+#: Default largest TV distance between the time average and the long-run law that counts as close.
+DEFAULT_TOLERANCE = 0.05
 
 
 @dataclass(frozen=True, eq=False)
@@ -1284,11 +1304,21 @@ class SimulationReport:
     curve_steps, curve_tv : ndarray
         ``d_start(t) = TV(pi0 P^t, long-run law)`` on a log-spaced grid of
         ``t`` in ``0..steps`` (:func:`core.evolution.tv_curve`).
-    status : {"consistent", "uncertain", "misleading", "mismatch", "incomplete"}
+    status : {"consistent", "biased", "uncertain", "misleading", "mismatch", "incomplete"}
+        ``consistent``: no state's time average differs from the long-run law
+        beyond its error, the error is below the tolerance, and R-hat <= 1.01
+        (when one closed class is reached); ``biased``: a significant
+        difference smaller than the tolerance (start-up bias); ``misleading``:
+        a significant difference above it; ``uncertain``: no significant
+        difference, but the error is too large or R-hat too high to trust it;
+        ``mismatch``: the ensemble is not a sample of ``pi0 P^step`` (the
+        simulation does not follow the model); ``incomplete``: no kept draw.
     verdict : str
         One line.
     findings : tuple of str
         Further plain sentences (methods, undefined values, structure).
+    ids : tuple of str
+    tolerance : float
     """
 
     result: SimulationResult
@@ -1316,6 +1346,8 @@ class SimulationReport:
     status: str
     verdict: str
     findings: tuple
+    ids: tuple = ()
+    tolerance: float = DEFAULT_TOLERANCE
 
     @property
     def agrees(self) -> bool:
@@ -1323,9 +1355,9 @@ class SimulationReport:
         return not self.disagree and self.time_average is not None
 
     def to_json(self, ids=None) -> dict:
-        """The ``simulate --json`` document; ``ids`` name the states (default ``"0"``, ``"1"``...)."""
+        """The ``simulate --json`` document; ``ids`` name the states (default: the report's ids)."""
         r = self.result
-        ids = [str(i) for i in range(r.n)] if ids is None else [str(i) for i in ids]
+        ids = list(self.ids or (str(i) for i in range(r.n))) if ids is None else [str(i) for i in ids]
 
         def per_state(v):
             return None if v is None else {i: _num(x) for i, x in zip(ids, np.asarray(v).tolist())}
@@ -1359,6 +1391,7 @@ class SimulationReport:
             "mcse_method": mc.method if mc is not None else None,
             "z": per_state(self.z),
             "z_crit": self.z_crit,
+            "tolerance": self.tolerance,
             "disagree": [ids[j] for j in self.disagree],
             "rhat": per_state(self.rhat),
             "rhat_split": per_state(self.rhat_split),
@@ -1438,7 +1471,8 @@ def _rhat_of(result: SimulationResult):
     return rr.rhat, rs, 2 * h, notes
 
 
-def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 60) -> SimulationReport:
+def compare(result: SimulationResult, P, *, ids=None, structure=None, tolerance: float = DEFAULT_TOLERANCE,
+            curve_points: int = 60) -> SimulationReport:
     """Set a run's statistics beside the exact values.
 
     Parameters
@@ -1446,7 +1480,14 @@ def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 
     result : SimulationResult
     P : (n, n) array_like
         The matrix simulated.
+    ids : sequence of str, optional
+        State ids for the report's sentences and JSON (default ``"0"``, ``"1"``...).
     structure : core.structure.Structure, optional
+    tolerance : float, optional
+        Largest total variation distance between the time average and the
+        long-run law that is close enough in practice (default 0.05, as for
+        ``check-plan``): a significant difference above it is "misleading",
+        below it "biased".
     curve_points : int, optional
         Points of the ``d_start(t)`` grid.
 
@@ -1465,11 +1506,12 @@ def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 
     from scipy.special import ndtri
 
     from .diagnostics import chisquare_gof
-    from .evolution import distribution_at, tv_curve, tv_distance
+    from .evolution import PowerLadder, distribution_at, tv_curve, tv_distance
     from .passage import limit_law
     from .structure import classify
 
     P = check_matrix(P)
+    ladder = PowerLadder(P)  # squares of P shared by every exact value below
     n = P.shape[0]
     if result.n != n:
         raise ValueError(f"the result is for {result.n} states, P has {n}")
@@ -1477,7 +1519,7 @@ def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 
         structure = classify(P)
     pi0 = np.asarray(result.start, dtype=np.float64)
     step = result.step
-    exact = distribution_at(P, pi0, step)
+    exact = distribution_at(ladder, pi0, step)
     long_run = limit_law(P, pi0, structure)
     R = result.replicates
     share = result.ensemble / R
@@ -1485,14 +1527,14 @@ def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 
     noise = float(np.sqrt(exact * (1 - exact) / (2 * np.pi * R)).sum())
     gof = chisquare_gof(result.ensemble, exact)
     grid = curve_grid(result.steps, curve_points)
-    curve = tv_curve(P, pi0, grid.tolist(), target=long_run)
+    curve = tv_curve(ladder, pi0, grid.tolist(), target=long_run)
     tavg = result.time_average
     tv_avg = tv_distance(tavg, long_run) if tavg is not None else None
     window = None
     if tavg is not None and n <= EXACT_WINDOW_STATES:
         from .plan import average_of_powers
 
-        first = distribution_at(P, pi0, result.burn_in + 1)
+        first = distribution_at(ladder, pi0, result.burn_in + 1)
         window = first @ average_of_powers(P, result.kept, stride=result.stride)
         window = np.clip(window, 0, None)
         window /= window.sum()
@@ -1511,27 +1553,33 @@ def compare(result: SimulationResult, P, *, structure=None, curve_points: int = 
         disagree = tuple(int(j) for j in np.flatnonzero(np.abs(z) > z_crit))
     rh, rs, rdraws, notes = _rhat_of(result)
 
-    status, verdict, findings = _verdict(result, structure, exact, long_run, gof, tv_ens, tavg, tv_avg, window,
-                                         tv_win, mc, z, z_crit, disagree, rh, notes, curve)
+    ids = tuple(str(i) for i in range(n)) if ids is None else tuple(str(i) for i in ids)
+    if len(ids) != n:
+        raise ValueError(f"{len(ids)} ids for {n} states")
+    status, verdict, findings = _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, tavg,
+                                         tv_avg, window, tv_win, mc, z, z_crit, disagree, rh, notes, curve)
     return SimulationReport(
         result=result, step=step, exact_at_step=_frozen(exact), long_run=_frozen(long_run),
         ensemble_share=_frozen(share), tv_ensemble=tv_ens, tv_ensemble_noise=noise, gof=gof,
         time_average=tavg, tv_time_average=tv_avg, window_mean=window, tv_window=tv_win, mcse=mc, z=z,
         z_crit=z_crit, disagree=disagree, rhat=rh, rhat_split=rs, rhat_draws=rdraws, rhat_notes=notes,
-        curve_steps=grid, curve_tv=curve, status=status, verdict=verdict, findings=tuple(findings),
+        curve_steps=grid, curve_tv=curve, status=status, verdict=verdict, findings=tuple(findings), ids=ids,
+        tolerance=tolerance,
     )
 
 
-def _verdict(result, structure, exact, long_run, gof, tv_ens, tavg, tv_avg, window, tv_win, mc, z, z_crit,
-             disagree, rh, notes, curve):
+def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, tavg, tv_avg, window, tv_win, mc,
+             z, z_crit, disagree, rh, notes, curve):
     findings: list[str] = []
     R, T = result.replicates, result.steps
     # structure hints
     reached = [k for k in structure.closed if long_run[list(structure.classes[k].states)].sum() > 0]
-    if len(reached) > 1:
+    several = len(reached) > 1
+    if several:
         findings.append(
             f"{len(reached)} closed classes can be reached from the start: each replicate settles in one of them, "
-            "so replicates legitimately disagree (large R-hat) and the pooled average estimates their mixture.")
+            "so replicates legitimately disagree (R-hat stays large however long the run) and the pooled "
+            "average estimates their mixture.")
     periodic = [structure.classes[k].period for k in reached if (structure.classes[k].period or 1) > 1]
     if periodic:
         findings.append(
@@ -1547,7 +1595,7 @@ def _verdict(result, structure, exact, long_run, gof, tv_ens, tavg, tv_avg, wind
         findings.append(f"R-hat, ESS and MCSE use the first {result.tracked} of the {R} replicates "
                         "(their own occupancy counts are kept; raise --tracked for more).")
     for j, note in sorted(notes.items()):
-        findings.append(f"R-hat of state {j}: {note}.")
+        findings.append(f"R-hat of state {ids[j]!r}: {note}.")
     if window is not None and tv_win is not None:
         findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
                         "(the start-up bias of this burn-in and run length).")
@@ -1561,25 +1609,37 @@ def _verdict(result, structure, exact, long_run, gof, tv_ens, tavg, tv_avg, wind
     if tavg is None:
         return "incomplete", "INCOMPLETE: no draw was kept yet (the run stopped inside the burn-in).", findings
     worst_rhat = np.nanmax(rh) if rh is not None and not np.all(np.isnan(rh)) else None
+    rhat_high = worst_rhat is not None and worst_rhat > RHAT_THRESHOLD and not several
+    bias_hint = ""
+    if tv_win is not None:
+        bias_hint = f"; this burn-in and run length alone give TV {tv_win:.3g} (exact)"
     if disagree:
         k = len(disagree)
-        msg = (f"MISLEADING: the time average disagrees with the long-run law (TV {tv_avg:.3g}; "
-               f"{k} state{'s' if k != 1 else ''} beyond {z_crit:.2f} standard errors)")
-        if tv_win is not None and tv_win > 0 and mc is not None:
-            msg += "; the run is too short or its burn-in too small for this start"
-        if worst_rhat is not None and worst_rhat > RHAT_THRESHOLD:
-            msg += f"; R-hat up to {_fmt_rhat(worst_rhat)}"
-        return "misleading", msg + ".", findings
+        beyond = f"{k} state{'s' if k != 1 else ''} beyond {z_crit:.2f} standard errors"
+        if tv_avg > tolerance:
+            msg = (f"MISLEADING: the time average is far from the long-run law: TV {tv_avg:.3g} > tolerance "
+                   f"{tolerance:g}, {beyond}{bias_hint}; the run is too short or its burn-in too small")
+            if worst_rhat is not None and worst_rhat > RHAT_THRESHOLD:
+                msg += f"; R-hat up to {_fmt_rhat(worst_rhat)}"
+            return "misleading", msg + ".", findings
+        return "biased", (f"BIASED: the time average is close to the long-run law (TV {tv_avg:.3g} <= {tolerance:g}) "
+                          f"but off beyond its Monte Carlo error, {beyond}{bias_hint}; a longer burn-in removes "
+                          "start-up bias."), findings
     if mc is None:
-        return "uncertain", (f"UNCERTAIN: time average at TV {tv_avg:.3g} from the long-run law, but too few "
-                             "replicates or batches to estimate its error."), findings
-    if worst_rhat is not None and worst_rhat > RHAT_THRESHOLD:
+        return "uncertain", (f"UNCERTAIN: the time average is at TV {tv_avg:.3g} from the long-run law, but there "
+                             "are too few replicates or batches to estimate its error."), findings
+    if tv_avg > tolerance:
+        return "uncertain", (f"UNCERTAIN: the time average is within its Monte Carlo error of the long-run law, "
+                             f"but that error is large (TV {tv_avg:.3g} > tolerance {tolerance:g}): run longer "
+                             "or more replicates."), findings
+    if rhat_high:
         return "uncertain", (f"UNCERTAIN: the time average is within its errors of the long-run law (TV "
-                             f"{tv_avg:.3g}), but R-hat up to {_fmt_rhat(worst_rhat)} says the replicates "
-                             "have not mixed."), findings
+                             f"{tv_avg:.3g}), but R-hat up to {_fmt_rhat(worst_rhat)} (above {RHAT_THRESHOLD}) "
+                             "says the replicates have not mixed well yet."), findings
+    tail = f" and R-hat <= {RHAT_THRESHOLD}" if worst_rhat is not None and not several else ""
     return "consistent", (f"CONSISTENT: the time average matches the long-run law within its Monte Carlo error "
-                          f"(TV {tv_avg:.3g}) and R-hat <= {RHAT_THRESHOLD}."), findings
+                          f"(TV {tv_avg:.3g}){tail}."), findings
 
 
 def _fmt_rhat(x: float) -> str:
-    return "infinity" if np.isinf(x) else f"{x:.3g}"
+    return "infinity" if np.isinf(x) else f"{x:.4g}"

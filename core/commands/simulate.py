@@ -13,7 +13,7 @@ from __future__ import annotations
 import sys
 import time
 
-from ._common import (add_file_argument, load_valid, nonnegative_int, positive_int, state_index,
+from ._common import (add_file_argument, load_valid, nonnegative_int, positive_int, probability, state_index,
                       stderr_is_tty, write_stdout)
 
 HELP = "simulate many replicates of the chain and compare them with the exact long-run values"
@@ -53,6 +53,9 @@ def add_arguments(parser):
     parser.add_argument("--memory-limit", metavar="SIZE", default=None,
                         help="largest memory the run may take, e.g. 4GiB (default 2GiB, or the "
                         "LONGRUN_SIMULATE_MEMORY environment variable)")
+    parser.add_argument("--tolerance", type=probability, default=None, metavar="X",
+                        help="largest total variation distance between the time average and the long-run "
+                        "law that is close enough (default 0.05)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -67,8 +70,8 @@ def _start(chain, text):
 
 def run(args) -> int:
     from ..jsonout import dumps
-    from ..simulate import (DEFAULT_TRACKED, ReplicateSimulation, compare, memory_limit_from_env,
-                            parse_bytes)
+    from ..simulate import (DEFAULT_TOLERANCE, DEFAULT_TRACKED, ReplicateSimulation, compare,
+                            memory_limit_from_env, parse_bytes)
 
     chain = load_valid(args)
     start, start_text = _start(chain, args.start)
@@ -84,9 +87,10 @@ def run(args) -> int:
             bar.update(snap)
     finally:
         bar.close()
-    report = compare(sim.result(), P)
+    tol = DEFAULT_TOLERANCE if args.tolerance is None else args.tolerance
+    report = compare(sim.result(), P, ids=chain.ids, tolerance=tol)
     if args.json:
-        doc = {"file": args.file, "name": chain.name or None, **report.to_json(chain.ids)}
+        doc = {"file": args.file, "name": chain.name or None, **report.to_json()}
         write_stdout(dumps(doc))
     else:
         write_stdout(render(report, chain, args.file, start_text))

@@ -500,3 +500,30 @@ def test_cancelled_run_reports_the_steps_done():
     assert rep.step == sim.t < 10**6
     assert any("cancelled" in f for f in rep.findings)
     assert rep.exact_at_step == pytest.approx(distribution_at(OZ, np.eye(3)[0], sim.t))
+
+
+def test_small_start_up_bias_is_biased_not_misleading():
+    # Land of Oz from 'N' (state 1) over only 100 steps: the window's exact mean is off the stationary law by
+    # the start-up transient (TV ~ 1e-3); 20000 replicates resolve it, but it is below the 0.05 tolerance.
+    res = run(OZ, replicates=20000, steps=100, start=1, seed=24)
+    rep = compare(res, OZ, ids=["R", "N", "S"])
+    assert 0 < rep.tv_window < 0.05
+    assert rep.status == "biased" and "BIASED" in rep.verdict
+    strict = compare(res, OZ, tolerance=1e-4)
+    assert strict.status == "misleading"
+    # the same run with a burn-in long past the transient (d(t) = 0.8 * 4^-t, E1) is consistent
+    rep2 = compare(run(OZ, replicates=20000, steps=120, burn_in=20, start=1, seed=24), OZ)
+    assert rep2.status == "consistent", rep2.verdict
+
+
+def test_iter_simulate_returns_the_result():
+    from core.simulate import iter_simulate
+
+    gen = iter_simulate(OZ, replicates=50, steps=30, seed=25, every=10)
+    steps = []
+    try:
+        while True:
+            steps.append(next(gen).step)
+    except StopIteration as stop:
+        res = stop.value
+    assert steps == [10, 20, 30] and res.step == 30 and res.ensemble.sum() == 50
