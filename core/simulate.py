@@ -16,33 +16,40 @@ core engine (``pi0 P^t``, the long-run law, ``d_start(t)``).
 The sampler: cell tables
 ------------------------
 Every row of ``P`` is quantised exactly to integer masses summing to
-``L * 2**64`` (``L = 2**b`` cells per row, each cell worth ``2**64`` units; the
-rounding of the row sum is absorbed by the row's largest entry, so each row
-sums to 1 exactly).  The alias construction (Walker 1977; Vose 1991, exact
-integer arithmetic) then splits the row into ``L`` equally likely cells, each
-owned by one state ("pure") or shared by two states ("mixed": a threshold
-``q`` in ``[0, 2**64)`` sends ``q / 2**64`` of the cell to one state and the
-rest to the other).  At most ``k - 1`` of the ``L`` cells of a row with ``k``
-successors are mixed, and ``b`` is chosen so that ``L`` is well above ``k``.
+``L * U`` (``L = 2**b`` equally likely cells per row, each worth ``U`` units;
+the rounding of the row sum is absorbed by the row's largest entry, so each
+row sums to 1 exactly).  The alias construction (Walker 1977; Vose 1991, in
+exact integers, vectorised over rows) splits the row into its ``L`` cells,
+each owned by one state ("pure") or shared by two ("mixed": a threshold sends
+part of the cell to one state and the rest to the other).  At most ``k - 1``
+cells of a row with ``k`` successors are mixed.  Two layouts
+(:class:`CellTable`):
 
-One step for all replicates is then: take 16 random bits per replicate (four
-per 64-bit word of the bit generator, the cell index is their top ``b`` bits),
-add the replicate's row offset, gather the cell (one lookup in a flat ``int32``
-table holding the *next row offset* for pure cells), and resolve the few
-replicates that landed in a mixed cell with one full 64-bit word each.  So a
-step is four passes over ``R`` numbers and one table gather, with no
-temporaries, and the transition probabilities are reproduced to ``2**-(b+64)``
-(exact for every probability that is a multiple of that, e.g. any ``k/2**m``,
-and within ``~1e-24`` otherwise; a probability of ``1e-12`` is kept, not
-rounded away).
+* ``split`` (sparse rows, small chains; ``U = 2**64``, ``L`` about ``32 k``):
+  a step takes 16 random bits per replicate (four per 64-bit word; the cell is
+  their top ``b`` bits), adds the replicate's row offset, gathers the cell
+  from a flat ``int32`` table holding the *next row offset* of pure cells, and
+  resolves the few replicates that landed in a mixed cell with one 64-bit word
+  each.  Probabilities are reproduced to ``2**-(b + 64)``.
+* ``wide`` (rows with so many successors that most cells would be mixed;
+  ``U = 2**(64 - b)``, ``L >= k``): one 64-bit word per replicate, whose top
+  ``b`` bits pick the cell and whose value is compared with the cell's
+  threshold; next offset ``= miss + (word < cut) * delta``, no branch.
+  Probabilities are reproduced to ``2**-64``.
+
+Either way a step is a handful of in-place passes over ``R`` numbers and one
+table gather; a probability of ``1e-12`` is kept, not rounded away.  Up to
+:data:`SCALAR_REPLICATES` replicates, a scalar kernel (a Python loop over the
+steps) replaces the vectorised one, whose per-call cost dominates there.
 
 Random streams
 --------------
 ``numpy.random.SeedSequence(seed).spawn(3)`` gives three independent PCG64
 streams: start states, cell bits, mixed-cell coins.  Step ``t`` always consumes
-exactly ``ceil(R/4)`` words of the cell stream, and the coin stream is read in
-(step, replicate) order, so the results are bit-identical whatever the chunk
-size, the snapshot interval or the kernel (vector or scalar) used.
+the same number of words of the cell stream (``ceil(R/4)`` or ``R``), and the
+coin stream is read in (step, replicate) order, so for a given chain the
+results are bit-identical whatever the chunk size, the snapshot interval or
+the kernel (vector or scalar) used.
 
 References
 ----------
@@ -108,8 +115,6 @@ SCALAR_REPLICATES = 16
 _BLOCK_ELEMENTS = 1 << 18
 #: Bytes a cell table may take before fewer cells per row are used.
 _TABLE_BUDGET = 1 << 20
-
-_U = 1 << 64  # units per cell
 
 
 # ---------------------------------------------------------------------------
@@ -963,12 +968,16 @@ class ReplicateSimulation:
         self._cancel.set()
 
     def default_chunk(self) -> int:
-        """Steps per chunk: about 2**20 replicate-steps (a few milliseconds)."""
-        return max(1, (1 << 20) // self.replicates)
+        """Steps per chunk: a few milliseconds of work (2**20 replicate-steps, 2**16 for the scalar kernel)."""
+        work = (1 << 16) if self._kernel == "scalar" else (1 << 20)
+        return max(1, work // self.replicates)
 
     def advance(self, k: int) -> SimulationSnapshot:
         """Advance ``k`` steps (fewer at the end of the run) and return a snapshot."""
-        k = _whole("k", k, 0, MAX_STEPS)
+        self._advance(_whole("k", k, 0, MAX_STEPS))
+        return self.snapshot()
+
+    def _advance(self, k: int) -> None:
         k = min(k, self.steps - self.t)
         t0 = time.perf_counter()
         done = 0
@@ -977,7 +986,6 @@ class ReplicateSimulation:
             self._advance_block(mb)
             done += mb
         self._elapsed += time.perf_counter() - t0
-        return self.snapshot()
 
     def snapshots(self, every: int | None = None, *, chunk: int | None = None) -> Iterator[SimulationSnapshot]:
         """Run to the end, yielding a snapshot every ``every`` steps and at the end.
@@ -1003,9 +1011,9 @@ class ReplicateSimulation:
                 return
             next_snap = min(self.steps, (self.t // every + 1) * every)
             target = min(next_snap, self.t + chunk)
-            snap = self.advance(target - self.t)
+            self._advance(target - self.t)
             if self.t == next_snap or self.done:
-                yield snap
+                yield self.snapshot()
         # an already finished run yields nothing more
 
     def run(self) -> "SimulationResult":
@@ -1021,6 +1029,16 @@ class ReplicateSimulation:
             paths=_frozen(self._paths()), path_start=self._path_start(), elapsed=self._elapsed,
             done=self.done, cancelled=self._cancel.is_set() and not self.done,
         )
+
+    def running_rhat(self) -> np.ndarray | None:
+        """Rank-normalised split R-hat of each state's indicator so far, or None.
+
+        Computed from the whole batches done so far (split into equal halves),
+        so it is available once two batches of the tracked replicates are
+        complete; cheap enough to call at every snapshot for a live plot.
+        ``nan``/``inf`` as in :func:`core.diagnostics.indicator_rank_rhat`.
+        """
+        return _rhat_of(self.result())[0]
 
     def ensemble(self) -> np.ndarray:
         """(n,) replicates in each state now."""

@@ -142,8 +142,7 @@ def test_tolerance_option(capsys):
 
 
 def test_json_names_states_in_notes_and_findings(capsys):
-    # 'failed' is never left in 1 step from 'failed'?  Use a start whose early draws miss a state: the
-    # findings speak of states by id, never by row index
+    # The findings and R-hat notes name states by their ids, never by row index
     doc = _json(capsys, "-R", "30", "-T", "20", "--seed", "4")
     assert all("state 0" not in f for f in doc["findings"])
     for sid, note in doc["rhat_notes"].items():

@@ -527,3 +527,13 @@ def test_iter_simulate_returns_the_result():
     except StopIteration as stop:
         res = stop.value
     assert steps == [10, 20, 30] and res.step == 30 and res.ensemble.sum() == 50
+
+
+def test_running_rhat_is_available_after_two_batches_and_matches_the_final():
+    sim = ReplicateSimulation(OZ, replicates=50, steps=800, seed=26)
+    assert sim.running_rhat() is None
+    seen = []
+    for snap in sim.snapshots(every=100):
+        seen.append(sim.running_rhat())
+    assert seen[0] is None and seen[1] is not None  # 8 batches of 100 draws: two complete at step 200
+    assert np.array_equal(seen[-1], compare(sim.result(), OZ).rhat)
