@@ -618,7 +618,8 @@ def estimate_memory(n: int, replicates: int, *, tracked: int, kept: int, paths: 
         # offsets int32, index int64, flags, records (wide), start draw (float64 + int64),
         # and per block: kept rows int64, random words (up to 8 bytes per replicate-step)
         "replicates": R * (4 + 8 + 1 + 16 + 16) + block * R * (8 + 8),
-        "tracked": tracked * (nb + 1) * n * count_bytes if nb else 0,
+        # the counters and the copy a result holds
+        "tracked": 2 * tracked * (nb + 1) * n * count_bytes if nb else 0,
         "paths": min(paths, R) * path_length * 4,
     }
     parts["total"] = sum(parts.values())
@@ -720,7 +721,7 @@ class SimulationResult:
         (0 when too few draws are planned).
     batch_length : int
         Kept draws per batch.
-    batch_counts : (tracked, batches + 1, n) ndarray
+    batch_counts : (tracked, batches + 1, n) ndarray of int32 (int64 beyond 2**31 draws)
         Per tracked replicate, per batch, per state: kept draws counted;
         slot ``batches`` holds the ``kept_planned - batches * batch_length``
         draws left over at the end.
@@ -1038,7 +1039,8 @@ class ReplicateSimulation:
         complete; cheap enough to call at every snapshot for a live plot.
         ``nan``/``inf`` as in :func:`core.diagnostics.indicator_rank_rhat`.
         """
-        return _rhat_of(self.result())[0]
+        g = min(self.batches, self._kept // self.batch_length) if self.batches else 0
+        return _rhat_from_batches(self._counts, g, self.batch_length)[0]
 
     def ensemble(self) -> np.ndarray:
         """(n,) replicates in each state now."""
@@ -1054,7 +1056,7 @@ class ReplicateSimulation:
             seed=self.seed, start=self.start, step=self.t, cancelled=self._cancel.is_set() and not self.done,
             ensemble=_frozen(self.ensemble()), occupancy=_frozen(self._occupancy.copy()), kept=self._kept,
             tracked=self.tracked, batches=self.batches, batch_length=self.batch_length,
-            batch_counts=_frozen(self._counts.astype(np.int64)), kept_planned=self.kept_planned,
+            batch_counts=_frozen(self._counts.copy()), kept_planned=self.kept_planned,
             paths=_frozen(self._paths()), path_start=self._path_start(), elapsed=self._elapsed,
             table_kind=self.table.kind, table_bits=self.table.bits, mixed_fraction=self.table.mixed_fraction,
             memory=dict(self.memory),
@@ -1468,20 +1470,22 @@ def _mcse_of(result: SimulationResult, mean: np.ndarray):
 
 def _rhat_of(result: SimulationResult):
     """(rank R-hat, split R-hat, draws per replicate used, notes) over whole batches."""
+    return _rhat_from_batches(result.batch_counts, result.complete_batches, result.batch_length)
+
+
+def _rhat_from_batches(c: np.ndarray, g: int, m: int):
     from .diagnostics import indicator_rank_rhat, indicator_rhat, rhat_note
 
-    g = result.complete_batches
     half = g // 2
-    h = half * result.batch_length
+    h = half * m
     if half < 1 or h < 2:
         return None, None, 0, {}
-    c = result.batch_counts
     chains = np.concatenate([c[:, :half, :].sum(axis=1), c[:, half:2 * half, :].sum(axis=1)], axis=0)
     rr = indicator_rank_rhat(chains, h)
     rs = indicator_rhat(chains, h)
     total = chains.sum(axis=0)
     notes = {}
-    for j in range(result.n):
+    for j in range(c.shape[2]):
         const = 0.0 if total[j] == 0 else (1.0 if total[j] == chains.shape[0] * h else None)
         note = rhat_note(float(rr.rhat[j]), constant_value=const)
         if note:
