@@ -286,12 +286,12 @@ class MatrixView(QTableView):
             act = QAction(text, self)
             act.setShortcut(seq)
             act.setShortcutContext(Qt.ShortcutContext.WidgetWithChildrenShortcut)
-            act.triggered.connect(slot)
+            act.triggered.connect(lambda _checked=False, f=slot: f())
             self.addAction(act)
         backspace = QAction("Clear cells", self)
         backspace.setShortcut(QKeySequence(Qt.Key.Key_Backspace))
         backspace.setShortcutContext(Qt.ShortcutContext.WidgetWithChildrenShortcut)
-        backspace.triggered.connect(self.clear_selection)
+        backspace.triggered.connect(lambda _checked=False: self.clear_selection())
         self.addAction(backspace)
 
     def fit_columns(self) -> None:

@@ -33,18 +33,35 @@ class DialogLog:
     infos: list = field(default_factory=list)
 
 
+def _no_modal(name):
+    def refuse(*args, **kwargs):
+        raise AssertionError(f"a modal dialog ({name}) was opened in a test without the dialogs fixture")
+    return refuse
+
+
 @pytest.fixture(autouse=True)
 def isolated(tmp_path, monkeypatch):
     monkeypatch.setenv("LONGRUN_SETTINGS_FILE", str(tmp_path / "settings" / "longrun.ini"))
     monkeypatch.setenv("LONGRUN_DATA_DIR", str(tmp_path / "data"))
-    yield tmp_path
+    from app import dialogs as d
+
+    with pytest.MonkeyPatch.context() as strict:  # its own patcher: a test's undo() cannot lift it
+        for name in ("show_problems", "ask_save_changes", "ask_recovery", "confirm", "open_path",
+                     "save_path", "inform"):
+            strict.setattr(d, name, _no_modal(name))
+        yield tmp_path
     from app.analysis_service import live_threads
 
     assert live_threads() == [], "an analysis thread was left running"
 
 
 @pytest.fixture
-def dialogs(monkeypatch):
+def dialogs():
+    with pytest.MonkeyPatch.context() as monkeypatch:
+        yield _recording_dialogs(monkeypatch)
+
+
+def _recording_dialogs(monkeypatch):
     from app import dialogs as d
 
     log = DialogLog()
