@@ -1,17 +1,32 @@
 """Replicate simulation: many copies of a chain at once, fast, reproducible, streaming.
 
 :class:`ReplicateSimulation` runs ``R`` independent copies ("replicates") of a
-chain for ``T`` steps from a start state, a start law or the uniform law.  It
-advances in chunks, yields a :class:`SimulationSnapshot` every ``k`` steps from
+chain from a start state, a start law or the uniform law.  It advances in
+chunks, yields a :class:`SimulationSnapshot` every ``k`` steps from
 :meth:`ReplicateSimulation.snapshots` (cancellable between chunks), and keeps
 only what the statistics need: the ensemble (where each replicate is now), the
-pooled occupancy counts of the kept draws (after a burn-in ``B``, every ``s``-th
-step), per-replicate occupancy counts in a few equal batches for a bounded
-number of "tracked" replicates (for R-hat, ESS and Monte Carlo standard errors,
-see :mod:`core.diagnostics`), and a few sample paths of bounded length.
-Memory is ``O(R + n^2)`` plus ``O(tracked * n)``; nothing of size ``R x T`` is
-ever stored.  :func:`compare` sets the result beside the exact values of the
-core engine (``pi0 P^t``, the long-run law, ``d_start(t)``).
+pooled occupancy counts of the kept draws, per-replicate occupancy counts in a
+few equal batches for a bounded number of "tracked" replicates (for R-hat, ESS
+and Monte Carlo standard errors, see :mod:`core.diagnostics`), and a few sample
+paths of bounded length.  Memory is ``O(R + n^2)`` plus ``O(tracked * n)``;
+nothing of size ``R x T`` is ever stored.  :func:`compare` sets the result
+beside the exact values of the core engine (``pi0 P^t``, the long-run law,
+``d_start(t)``).
+
+The run convention (the same as the exact plan check, :mod:`core.plan`)
+-----------------------------------------------------------------------
+A run is a burn-in of ``B`` steps followed by ``T`` further steps, ``B + T``
+steps in all (``steps`` is ``T`` and never includes the burn-in;
+``total_steps == B + T``).  Step 0 is the start.
+
+* The ensemble (final-step estimator) is where the replicates are at step
+  ``B + T``; its exact law is ``pi0 P^(B+T)``.
+* The time average keeps the states at steps ``B, B + s, ..., B + (m-1) s``
+  with ``m = floor(T / s)`` (with ``B = 0`` and ``s = 1``: ``X_0 ... X_(T-1)``);
+  the exact mean of that average is ``(1/m) sum_(j<m) pi0 P^(B+js)``
+  (:func:`core.plan.estimate_law` for ``Plan(start, T, burn_in=B, stride=s,
+  estimator="average")``).
+* Snapshots count ``step`` from 0 to ``B + T``.
 
 The sampler: cell tables
 ------------------------
@@ -637,9 +652,10 @@ class SimulationSnapshot:
     Attributes
     ----------
     step : int
-        Steps done so far (0 is the start).
+        Steps done so far, burn-in included (0 is the start; the run ends at
+        ``total_steps = burn_in + steps``).
     steps : int
-        Steps planned (``T``).
+        ``T``, the steps planned after the burn-in.
     replicates : int
     ensemble : (n,) ndarray of int64
         How many replicates are in each state now.
@@ -654,6 +670,8 @@ class SimulationSnapshot:
     elapsed : float
         Seconds spent stepping so far.
     done, cancelled : bool
+    burn_in : int
+        ``B``, the steps run before the first kept draw (the draw at step ``B``).
     """
 
     step: int
@@ -667,10 +685,18 @@ class SimulationSnapshot:
     elapsed: float
     done: bool
     cancelled: bool
+    burn_in: int = 0
+
+    @property
+    def total_steps(self) -> int:
+        """``B + T``: the step at which the run ends."""
+        return self.burn_in + self.steps
 
     @property
     def progress(self) -> float:
-        return self.step / self.steps if self.steps else 1.0
+        """Fraction of the ``B + T`` steps done."""
+        total = self.total_steps
+        return self.step / total if total else 1.0
 
     @property
     def ensemble_share(self) -> np.ndarray:
@@ -685,7 +711,8 @@ class SimulationSnapshot:
 
     def to_json(self) -> dict:
         return {
-            "step": self.step, "steps": self.steps, "replicates": self.replicates,
+            "step": self.step, "steps": self.steps, "burn_in": self.burn_in, "total_steps": self.total_steps,
+            "replicates": self.replicates,
             "ensemble": self.ensemble, "occupancy": self.occupancy, "kept": self.kept,
             "path_start": self.path_start, "paths": self.paths, "elapsed": self.elapsed,
             "done": self.done, "cancelled": self.cancelled,
@@ -699,21 +726,24 @@ class SimulationResult:
     Attributes
     ----------
     n, replicates, steps, burn_in, stride : int
-        The run's parameters (``steps`` as planned).
+        The run's parameters: ``steps`` is ``T``, the steps planned after the
+        burn-in ``B``; the run is ``B + T`` steps (:attr:`total_steps`).
     seed : int
         The seed (the entropy of the root ``SeedSequence``): rerunning with it
         reproduces the run bit for bit.
     start : (n,) ndarray
         The start law.
     step : int
-        Steps actually done (``< steps`` only when cancelled).
+        Steps actually done, burn-in included (``B + T``, less only when
+        cancelled).
     cancelled : bool
     ensemble : (n,) ndarray of int64
         Replicates in each state at ``step``.
     occupancy : (n,) ndarray of int64
         Kept draws per state pooled over all replicates.
     kept : int
-        Kept draws per replicate (times ``burn_in + 1``, ``burn_in + 1 + stride``, ...).
+        Kept draws per replicate so far: the states at steps ``B, B + s, ...,
+        B + (kept - 1) s`` (``kept_planned = floor(T / s)`` when finished).
     tracked : int
         Replicates whose own counts were kept (the first ``tracked`` ones).
     batches : int
@@ -726,6 +756,7 @@ class SimulationResult:
         slot ``batches`` holds the ``kept_planned - batches * batch_length``
         draws left over at the end.
     kept_planned : int
+        ``m = floor(T / s)``, the draws a finished run keeps per replicate.
     paths : (p, m) ndarray of int32
     path_start : int
     elapsed : float
@@ -762,6 +793,11 @@ class SimulationResult:
     table_bits: int
     mixed_fraction: float
     memory: dict = field(default_factory=dict)
+
+    @property
+    def total_steps(self) -> int:
+        """``B + T``: the step at which the run ends."""
+        return self.burn_in + self.steps
 
     @property
     def time_average(self) -> np.ndarray | None:
@@ -830,14 +866,18 @@ class ReplicateSimulation:
     replicates : int
         ``R``, 1 to 10**6.
     steps : int
-        ``T``, at least 1.
+        ``T``, the steps run after the burn-in (at least 1, and at least
+        ``stride``); the run is ``B + T`` steps in all.
     start : None, "uniform", int or (n,) array_like, optional
         Start state index, start law, or uniform (default).
     burn_in : int, optional
-        ``B`` (default 0): the draws of steps ``1..B`` are not kept.
+        ``B`` (default 0): the steps run before the first kept draw; the
+        states at steps ``0..B-1`` are not kept.
     stride : int, optional
-        ``s`` (default 1): kept draws are the states at steps
-        ``B + 1, B + 1 + s, B + 1 + 2s, ... <= T``.
+        ``s`` (default 1, at most ``T``): the kept draws are the states at
+        steps ``B, B + s, ..., B + (m-1) s`` with ``m = floor(T / s)`` (with
+        ``B = 0, s = 1``: steps ``0 .. T-1``).  The ensemble at the end is at
+        step ``B + T``.  This is the convention of :mod:`core.plan`.
     seed : int or None, optional
         Root seed of ``numpy.random.SeedSequence``; fresh entropy when None
         (the seed used is in the result either way).
@@ -864,16 +904,18 @@ class ReplicateSimulation:
     -----
     Drive it with :meth:`snapshots` (a generator; closing it or calling
     :meth:`cancel` from any thread stops the run at the next chunk boundary),
-    or :meth:`advance`; :meth:`result` can be called at any time.
+    or :meth:`advance`; :meth:`result` can be called at any time.  Steps
+    (``t``, snapshots' ``step``) count from 0 to ``total_steps = B + T``.
 
     Examples
     --------
-    >>> sim = ReplicateSimulation([[0.9, 0.1], [0.5, 0.5]], replicates=1000, steps=200, seed=1)
+    >>> sim = ReplicateSimulation([[0.9, 0.1], [0.5, 0.5]], replicates=1000, steps=200, burn_in=50,
+    ...                           stride=4, seed=1)
     >>> for snap in sim.snapshots(every=100):
     ...     pass
     >>> res = sim.result()
-    >>> res.step, int(res.ensemble.sum())
-    (200, 1000)
+    >>> res.step, res.total_steps, res.kept, int(res.ensemble.sum())
+    (250, 250, 50, 1000)
     """
 
     def __init__(self, P, *, replicates: int, steps: int, start=None, burn_in: int = 0, stride: int = 1,
@@ -884,8 +926,12 @@ class ReplicateSimulation:
         T = _whole("steps", steps, 1, MAX_STEPS)
         B = _whole("burn_in", burn_in, 0, MAX_STEPS)
         s = _whole("stride", stride, 1, MAX_STEPS)
-        if B >= T:
-            raise OptionError(f"burn_in ({B}) must be smaller than steps ({T}): no draw would be kept")
+        if s > T:
+            raise OptionError(
+                f"stride ({s}) must be at most steps ({T}): the time average keeps floor(steps / stride) "
+                "draws after the burn-in, and none would be kept")
+        if B + T > MAX_STEPS:
+            raise OptionError(f"burn_in + steps ({B:,} + {T:,}) must be at most {MAX_STEPS:.0e}")
         tracked = _whole("tracked", tracked, 1, MAX_REPLICATES)
         paths = _whole("paths", paths, 0, 1000)
         path_length = _whole("path_length", path_length, 1, 10**7)
@@ -897,7 +943,8 @@ class ReplicateSimulation:
         n = P.shape[0]
         pi0 = start_law(n, start)
         self.n, self.replicates, self.steps, self.burn_in, self.stride = n, R, T, B, s
-        self.kept_planned = (T - B - 1) // s + 1
+        self.total_steps = B + T
+        self.kept_planned = T // s
         self.tracked = min(R, tracked)
         self.n_paths = min(paths, R)
         self.path_length = path_length
@@ -949,6 +996,9 @@ class ReplicateSimulation:
         self._path_buf = np.empty((self.n_paths, path_length), dtype=np.int32)
         self._path_count = 0  # states written so far (including step 0)
         self._record_paths(x0[: self.n_paths][:, None])
+        if B == 0:  # the start itself is the first kept draw
+            self._rows[0] = x0
+            self._accumulate(1, 0)
         self._elapsed = 0.0
         self._cancel = threading.Event()
         self._kernel = _kernel or ("scalar" if R <= SCALAR_REPLICATES else "vector")
@@ -958,7 +1008,7 @@ class ReplicateSimulation:
     # -- public API ---------------------------------------------------------
     @property
     def done(self) -> bool:
-        return self.t >= self.steps
+        return self.t >= self.total_steps
 
     @property
     def cancelled(self) -> bool:
@@ -974,12 +1024,12 @@ class ReplicateSimulation:
         return max(1, work // self.replicates)
 
     def advance(self, k: int) -> SimulationSnapshot:
-        """Advance ``k`` steps (fewer at the end of the run) and return a snapshot."""
+        """Advance ``k`` steps (fewer at the end of the run, step ``B + T``) and return a snapshot."""
         self._advance(_whole("k", k, 0, MAX_STEPS))
         return self.snapshot()
 
     def _advance(self, k: int) -> None:
-        k = min(k, self.steps - self.t)
+        k = min(k, self.total_steps - self.t)
         t0 = time.perf_counter()
         done = 0
         while done < k:
@@ -989,12 +1039,13 @@ class ReplicateSimulation:
         self._elapsed += time.perf_counter() - t0
 
     def snapshots(self, every: int | None = None, *, chunk: int | None = None) -> Iterator[SimulationSnapshot]:
-        """Run to the end, yielding a snapshot every ``every`` steps and at the end.
+        """Run to the end (step ``B + T``), yielding a snapshot every ``every`` steps and at the end.
 
         Parameters
         ----------
         every : int, optional
-            Snapshot interval in steps (default: about 100 snapshots per run).
+            Snapshot interval in steps, counted from step 0 (burn-in
+            included; default: about 100 snapshots per run).
         chunk : int, optional
             Steps between cancellation checks (default :meth:`default_chunk`).
 
@@ -1004,13 +1055,14 @@ class ReplicateSimulation:
             The last one has ``done`` or ``cancelled`` set.  After
             :meth:`cancel`, at most one more chunk is run.
         """
-        every = max(1, self.steps // 100) if every is None else _whole("every", every, 1, MAX_STEPS)
+        total = self.total_steps
+        every = max(1, total // 100) if every is None else _whole("every", every, 1, MAX_STEPS)
         chunk = self.default_chunk() if chunk is None else _whole("chunk", chunk, 1, MAX_STEPS)
         while not self.done:
             if self._cancel.is_set():
                 yield self.snapshot()
                 return
-            next_snap = min(self.steps, (self.t // every + 1) * every)
+            next_snap = min(total, (self.t // every + 1) * every)
             target = min(next_snap, self.t + chunk)
             self._advance(target - self.t)
             if self.t == next_snap or self.done:
@@ -1019,7 +1071,7 @@ class ReplicateSimulation:
 
     def run(self) -> "SimulationResult":
         """Run to the end (or until cancelled) and return :meth:`result`."""
-        for _ in self.snapshots(every=self.steps):
+        for _ in self.snapshots(every=self.total_steps):
             pass
         return self.result()
 
@@ -1028,7 +1080,7 @@ class ReplicateSimulation:
             step=self.t, steps=self.steps, replicates=self.replicates,
             ensemble=_frozen(self.ensemble()), occupancy=_frozen(self._occupancy.copy()), kept=self._kept,
             paths=_frozen(self._paths()), path_start=self._path_start(), elapsed=self._elapsed,
-            done=self.done, cancelled=self._cancel.is_set() and not self.done,
+            done=self.done, cancelled=self._cancel.is_set() and not self.done, burn_in=self.burn_in,
         )
 
     def running_rhat(self) -> np.ndarray | None:
@@ -1064,12 +1116,18 @@ class ReplicateSimulation:
 
     # -- internals ------------------------------------------------------------
     def _kept_rows(self, t1: int, t2: int) -> tuple[list[int], int]:
-        """Offsets (0-based within steps t1..t2) of kept steps, and the kept index of the first."""
+        """Offsets (0-based within steps t1..t2) of kept steps, and the kept index of the first.
+
+        The kept steps are ``B + j s`` for ``j = 0 .. m-1`` (``m = kept_planned``).
+        """
         B, s = self.burn_in, self.stride
-        first = B + 1 if t1 <= B + 1 else B + 1 + -(-(t1 - B - 1) // s) * s
-        rows = list(range(first - t1, t2 - t1 + 1, s)) if first <= t2 else []
-        k0 = (first - B - 1) // s if rows else 0
-        return rows, k0
+        last = B + (self.kept_planned - 1) * s
+        lo = max(t1, B)
+        first = B + -(-(lo - B) // s) * s
+        hi = min(t2, last)
+        if first > hi:
+            return [], 0
+        return list(range(first - t1, hi - t1 + 1, s)), (first - B) // s
 
     def _advance_block(self, mb: int) -> None:
         t1 = self.t + 1
@@ -1279,7 +1337,7 @@ class SimulationReport:
     ----------
     result : SimulationResult
     step : int
-        The step of the ensemble (``T``, or where a cancelled run stopped).
+        The step of the ensemble (``B + T``, or where a cancelled run stopped).
     exact_at_step : (n,) ndarray
         ``pi0 P^step`` (:func:`core.evolution.distribution_at`).
     long_run : (n,) ndarray
@@ -1297,7 +1355,10 @@ class SimulationReport:
         ``TV(time average, long-run law)``.
     window_mean : (n,) ndarray or None
         Exact expected time average of these kept draws,
-        ``(1/N) sum_k pi0 P^(B+1+ks)`` (for chains up to 400 states).
+        ``(1/m) sum_(j<m) pi0 P^(B+js)`` with ``m`` the kept draws (for
+        chains up to 400 states); for a finished run it is the law the plan
+        check (:func:`core.plan.estimate_law`, estimator ``"average"``) gives
+        for the same ``B``, ``T`` and ``s``.
     tv_window : float or None
         ``TV(window_mean, long-run law)``: the start-up bias of the window itself.
     mcse : core.diagnostics.MCSE or None
@@ -1323,7 +1384,7 @@ class SimulationReport:
         Why an R-hat is undefined (``nan``) or infinite.
     curve_steps, curve_tv : ndarray
         ``d_start(t) = TV(pi0 P^t, long-run law)`` on a log-spaced grid of
-        ``t`` in ``0..steps`` (:func:`core.evolution.tv_curve`).
+        ``t`` in ``0..B+T`` (:func:`core.evolution.tv_curve`).
     status : {"consistent", "biased", "uncertain", "misleading", "mismatch", "incomplete"}
         ``consistent``: no state's time average differs from the long-run law
         beyond its error, the error is below the tolerance, and R-hat <= 1.01
@@ -1388,6 +1449,7 @@ class SimulationReport:
             "replicates": r.replicates,
             "burn_in": r.burn_in,
             "stride": r.stride,
+            "total_steps": r.total_steps,
             "seed": r.seed,
             "start": {i: p for i, p in zip(ids, r.start.tolist()) if p > 0},
             "step": self.step,
@@ -1519,6 +1581,10 @@ def compare(result: SimulationResult, P, *, ids=None, structure=None, tolerance:
 
     Notes
     -----
+    The run convention is that of :mod:`core.plan`: the ensemble is compared
+    with ``pi0 P^(B+T)`` (``pi0 P^step`` for a cancelled run) and the kept
+    draws' exact mean is ``(1/m) sum_(j<m) pi0 P^(B+js)``.
+
     The per-state test is ``|time average - long-run law| > z_crit * MCSE``
     with a Bonferroni threshold over the states at family-wise rate
     :data:`FAMILY_ALPHA`; the ensemble test is the chi-square fit to
@@ -1548,7 +1614,7 @@ def compare(result: SimulationResult, P, *, ids=None, structure=None, tolerance:
     tv_ens = tv_distance(share, exact)
     noise = float(np.sqrt(exact * (1 - exact) / (2 * np.pi * R)).sum())
     gof = chisquare_gof(result.ensemble, exact)
-    grid = curve_grid(result.steps, curve_points)
+    grid = curve_grid(result.total_steps, curve_points)
     curve = tv_curve(ladder, pi0, grid.tolist(), target=long_run)
     tavg = result.time_average
     tv_avg = tv_distance(tavg, long_run) if tavg is not None else None
@@ -1556,7 +1622,8 @@ def compare(result: SimulationResult, P, *, ids=None, structure=None, tolerance:
     if tavg is not None and n <= EXACT_WINDOW_STATES:
         from .plan import average_of_powers
 
-        first = distribution_at(ladder, pi0, result.burn_in + 1)
+        # kept draws at steps B, B + s, ..., B + (kept - 1) s
+        first = distribution_at(ladder, pi0, result.burn_in)
         window = first @ average_of_powers(P, result.kept, stride=result.stride)
         window = np.clip(window, 0, None)
         window /= window.sum()
@@ -1593,7 +1660,7 @@ def compare(result: SimulationResult, P, *, ids=None, structure=None, tolerance:
 def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, tavg, tv_avg, window, tv_win, mc,
              z, z_crit, disagree, rh, notes, curve):
     findings: list[str] = []
-    R, T = result.replicates, result.steps
+    R, total = result.replicates, result.total_steps
     # structure hints
     reached = [k for k in structure.closed if long_run[list(structure.classes[k].states)].sum() > 0]
     several = len(reached) > 1
@@ -1606,9 +1673,10 @@ def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, ta
     if periodic:
         findings.append(
             f"the chain is periodic (period {max(periodic)}): pi0 P^t keeps cycling and does not converge, so the "
-            "ensemble is compared with pi0 P^T; only the time average tends to the long-run law.")
+            "ensemble is compared with pi0 P^(B+T); only the time average tends to the long-run law.")
     if result.cancelled:
-        findings.append(f"the run was cancelled at step {result.step} of {T}; statistics cover the steps done.")
+        findings.append(f"the run was cancelled at step {result.step} of {total} (burn-in {result.burn_in} "
+                        f"+ {result.steps}); statistics cover the steps done.")
     if mc is not None:
         findings.append(f"Monte Carlo standard errors by {mc.method}"
                         + (f" ({result.tracked} tracked replicates of {R})" if "replicates" in mc.method else "")
@@ -1621,7 +1689,7 @@ def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, ta
     if window is not None and tv_win is not None:
         findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
                         "(the start-up bias of this burn-in and run length).")
-    findings.append(f"d_start(T) = TV(pi0 P^T, long-run law) = {curve[-1]:.3g}.")
+    findings.append(f"d_start(B+T) = TV(pi0 P^{total}, long-run law) = {curve[-1]:.3g}.")
     # the verdict
     if gof.impossible or (np.isfinite(gof.pvalue) and gof.pvalue < ENGINE_ALPHA):
         why = ("replicates sit in states that pi0 P^t gives probability 0" if gof.impossible

@@ -1,10 +1,13 @@
 """``longrun simulate FILE --replicates R --steps T ...``: simulate, and say whether to trust it.
 
-Runs ``R`` independent replicates for ``T`` steps with the replicate engine
-(:mod:`core.simulate`), then prints, per state, the ensemble at step ``T``
-beside the exact law ``pi0 P^T``, the time average of the kept draws beside
-the exact long-run law with its Monte Carlo standard error, R-hat and ESS, the
-total variation distances, and a one-line verdict.  ``--json`` prints the same
+Runs ``R`` independent replicates with the replicate engine
+(:mod:`core.simulate`) for a burn-in of ``B`` steps followed by ``T`` steps
+(``B + T`` in all, the run convention of ``check-plan``), then prints, per
+state, the ensemble at step ``B + T`` beside the exact law ``pi0 P^(B+T)``,
+the time average of the kept draws (the states at steps ``B, B + S, ...,
+B + (m-1) S``, ``m = floor(T / S)``) beside the exact long-run law with its
+Monte Carlo standard error, R-hat and ESS, the total variation distances, and
+a one-line verdict.  ``--json`` prints the same
 as one JSON document.  A progress bar goes to stderr when the run takes more
 than about a second and stderr is a terminal (never with ``--json``).
 """
@@ -18,9 +21,10 @@ from ._common import (add_file_argument, load_valid, nonnegative_int, positive_i
 
 HELP = "simulate many replicates of the chain and compare them with the exact long-run values"
 DESCRIPTION = (
-    "Simulate R independent replicates of the chain for T steps (fast, reproducible from --seed) and "
-    "set the results beside the exact values: the ensemble at step T against pi0 P^T (total variation "
-    "and a chi-square test), the time average of the kept draws against the long-run law (Monte Carlo "
+    "Simulate R independent replicates of the chain for a burn-in of B steps then T steps (fast, "
+    "reproducible from --seed), the same run as check-plan's, and set the results beside the exact values: "
+    "the ensemble at step B+T against pi0 P^(B+T) (total variation and a chi-square test), the time "
+    "average of the states at steps B, B+S, ..., B+(m-1)S, m = floor(T/S), against the long-run law (Monte Carlo "
     "standard errors, z-scores), rank-normalised split R-hat and ESS of each state's indicator, and a "
     "one-line verdict on whether the simulation can be trusted. Results describe the model, not the "
     "world; decisions on money, maintenance or safety need qualified review."
@@ -37,11 +41,12 @@ def add_arguments(parser):
     parser.add_argument("--replicates", "-R", required=True, type=positive_int, metavar="R",
                         help="independent replicates, 1 to 1e6 (e.g. 1000 or 1e5)")
     parser.add_argument("--steps", "-T", required=True, type=positive_int, metavar="T",
-                        help="steps per replicate (e.g. 10000 or 1e6)")
+                        help="steps per replicate after the burn-in (e.g. 10000 or 1e6); the run is B + T steps")
     parser.add_argument("--burn-in", type=nonnegative_int, default=0, metavar="B",
-                        help="steps whose draws are not kept for the time average (default 0)")
+                        help="steps run first, whose states are not kept for the time average (default 0)")
     parser.add_argument("--stride", type=positive_int, default=1, metavar="S",
-                        help="keep every S-th draw after the burn-in (default 1)")
+                        help="keep the states at steps B, B+S, B+2S, ... (floor(T/S) of them; at most T; "
+                        "default 1)")
     parser.add_argument("--start", metavar="ID", default=None,
                         help="start state (default: the first state in the file); 'uniform' starts "
                         "from every state with equal probability")
@@ -83,7 +88,7 @@ def run(args) -> int:
     )
     bar = _Progress(enabled=not args.json and stderr_is_tty())
     try:
-        for snap in sim.snapshots(every=max(1, args.steps // 400)):
+        for snap in sim.snapshots(every=max(1, sim.total_steps // 400)):
             bar.update(snap)
     finally:
         bar.close()
@@ -117,9 +122,9 @@ class _Progress:
         frac = snap.progress
         fill = int(round(frac * self.width))
         rate = snap.step * snap.replicates / snap.elapsed if snap.elapsed else 0.0
-        eta = (snap.steps - snap.step) * snap.replicates / rate if rate else 0.0
+        eta = (snap.total_steps - snap.step) * snap.replicates / rate if rate else 0.0
         line = (f"\r[{'#' * fill}{'.' * (self.width - fill)}] {100 * frac:5.1f}%  step {snap.step:,}/"
-                f"{snap.steps:,}  {rate:.3g} replicate-steps/s  {eta:.0f} s left ")
+                f"{snap.total_steps:,}  {rate:.3g} replicate-steps/s  {eta:.0f} s left ")
         sys.stderr.write(line)
         sys.stderr.flush()
         self.shown = True
@@ -128,6 +133,17 @@ class _Progress:
         if self.shown:
             sys.stderr.write("\r" + " " * (self.width + 90) + "\r")
             sys.stderr.flush()
+
+
+def _kept_steps(r) -> str:
+    """The kept steps B, B + S, ..., B + (k-1) S written out briefly."""
+    B, s, k = r.burn_in, r.stride, r.kept
+    if k == 0:
+        return "none yet"
+    steps = [B + j * s for j in range(min(k, 3))]
+    if k <= 3:
+        return ", ".join(f"{t:,}" for t in steps)
+    return f"{steps[0]:,}, {steps[1]:,}, ..., {B + (k - 1) * s:,}"
 
 
 def _cell(x, fmt: str = ".6g", width: int = 10) -> str:
@@ -156,9 +172,11 @@ def render(report, chain, path: str, start_text: str) -> str:
     lines = [
         f"Simulation: {chain.name or path}",
         f"  start        {start_text}",
-        f"  replicates   {r.replicates:,}   steps {format_steps(r.steps, chain.step)}",
-        f"  kept draws   {r.kept:,} per replicate (burn-in {r.burn_in:,}, every {r.stride} step"
-        f"{'s' if r.stride != 1 else ''})",
+        f"  replicates   {r.replicates:,}",
+        f"  burn-in      {format_steps(r.burn_in, chain.step) if r.burn_in else 'none'}",
+        f"  steps        {format_steps(r.steps, chain.step)} after the burn-in ({r.total_steps:,} in all; "
+        f"the ensemble is at step {r.step:,})",
+        f"  kept draws   {r.kept:,} per replicate (the states at steps {_kept_steps(r)})",
         f"  seed         {r.seed}",
         f"  speed        {r.step * r.replicates / r.elapsed:.3g} replicate-steps/s" if r.elapsed else "",
         "",
@@ -167,7 +185,7 @@ def render(report, chain, path: str, start_text: str) -> str:
     w = max(8, *(len(s) for s in ids[: 10**4]))
     head = (f"  {'state':<{w}}  {'ensemble':>10}  {'exact':>10}  {'time avg':>10}  {'long run':>10}  "
             f"{'MCSE':>9}  {'z':>7}  {'R-hat':>7}  {'ESS':>9}")
-    sub = (f"  {'':<{w}}  {'at T':>10}  {'pi0 P^T':>10}  {'(kept)':>10}  {'(exact)':>10}  "
+    sub = (f"  {'':<{w}}  {'at B+T':>10}  {'P^(B+T)':>10}  {'(kept)':>10}  {'(exact)':>10}  "
            f"{'':>9}  {'':>7}  {'':>7}  {'':>9}")
     lines += [head, sub, "  " + "-" * (len(head) - 2)]
     n = r.n
@@ -191,14 +209,15 @@ def render(report, chain, path: str, start_text: str) -> str:
         lines.append(f"  ({n - TABLE_ROWS} more states; --json lists all)")
     lines.append("")
     g = report.gof
-    lines.append(f"  ensemble vs pi0 P^T      TV {report.tv_ensemble:.3g} (sampling noise alone gives about "
+    lines.append(f"  ensemble vs pi0 P^(B+T)  TV {report.tv_ensemble:.3g} (sampling noise alone gives about "
                  f"{report.tv_ensemble_noise:.2g}); chi-square {g.statistic:.4g} on {g.dof} df, p = "
                  f"{g.pvalue:.3g}" + (f" ({g.pooled} sparse cells pooled)" if g.pooled else ""))
     if report.tv_time_average is not None:
         lines.append(f"  time average vs long run TV {report.tv_time_average:.3g}"
                      + (f"; |z| > {report.z_crit:.2f} flags a state (family-wise 1e-3)"
                         if report.z is not None else ""))
-    lines.append(f"  d_start(T)               {report.curve_tv[-1]:.3g} (exact distance of pi0 P^T from the long run)")
+    lines.append(f"  d_start(B+T)             {report.curve_tv[-1]:.3g} (exact distance of pi0 P^(B+T) from the long "
+                 "run)")
     lines.append("")
     for f in report.findings:
         lines.append(textwrap.fill(f, width=96, initial_indent="  - ", subsequent_indent="    "))

@@ -34,6 +34,23 @@ def test_json_contract_keys_and_values(capsys):
     assert all(isinstance(v, float) for v in doc["rhat"].values())
     assert doc["status"] in ("consistent", "biased", "uncertain", "misleading", "mismatch")
     assert doc["start"] == {"new": 1.0}
+    assert doc["burn_in"] == 0 and doc["stride"] == 1 and doc["total_steps"] == 500 and doc["step"] == 500
+
+
+def test_json_follows_the_plan_convention(capsys):
+    # --steps T counts the steps after --burn-in B; "exact_at_T" is pi0 P^(B+T) (checked by direct
+    # matrix powers, numpy.linalg.matrix_power) and equals check-plan's final-step law for the same B, T.
+    from core.io import load_chain
+
+    doc = _json(capsys, "-R", "50", "-T", "30", "--burn-in", "12", "--stride", "4", "--seed", "9")
+    assert (doc["steps"], doc["burn_in"], doc["stride"], doc["total_steps"], doc["step"]) == (30, 12, 4, 42, 42)
+    assert doc["kept"] == 30 // 4
+    P = load_chain(SAMPLE).matrix()
+    want = np.linalg.matrix_power(P, 42)[0]
+    assert list(doc["exact_at_T"].values()) == pytest.approx(want.tolist(), abs=1e-12)
+    assert main(["check-plan", str(SAMPLE), "--steps", "30", "--burn-in", "12", "--json"]) == 0
+    plan = json.loads(capsys.readouterr().out)
+    assert list(doc["exact_at_T"].values()) == pytest.approx(list(plan["expected_estimate"].values()), abs=1e-12)
 
 
 def test_json_is_reproducible_from_the_seed(capsys):
@@ -42,7 +59,7 @@ def test_json_is_reproducible_from_the_seed(capsys):
     for d in (a, b):
         d.pop("engine")
     assert a == b
-    assert a["kept"] == (300 - 10 - 1) // 2 + 1
+    assert a["kept"] == 300 // 2 and a["total_steps"] == 310
 
 
 def test_json_long_run_matches_the_exact_engine(capsys):
@@ -61,7 +78,8 @@ def test_readable_output_has_table_distances_and_verdict(capsys):
     out = capsys.readouterr().out
     for sid in ("new", "worn", "degraded", "failed"):
         assert any(line.strip().startswith(sid) for line in out.splitlines())
-    assert "ensemble vs pi0 P^T" in out and "time average vs long run" in out
+    assert "ensemble vs pi0 P^(B+T)" in out and "time average vs long run" in out
+    assert "burn-in      none" in out and "2,000 in all" in out
     lines = [ln for ln in out.splitlines() if ln.strip()]
     assert lines[-2].split(":")[0] in ("CONSISTENT", "BIASED", "UNCERTAIN", "MISLEADING", "MISMATCH")
     assert "the first state; choose with --start" in out
@@ -79,7 +97,8 @@ def test_uniform_start(capsys):
     (["--replicates", "2e6", "--steps", "10"], "replicates must be between 1 and 1e+06"),
     (["--replicates", "10", "--steps", "0"], "must be at least 1"),
     (["--replicates", "10", "--steps", "10", "--start", "boiler"], "--start 'boiler': no such state"),
-    (["--replicates", "10", "--steps", "10", "--burn-in", "10"], "burn_in (10) must be smaller than steps"),
+    (["--replicates", "10", "--steps", "10", "--stride", "11"], "stride (11) must be at most steps (10)"),
+    (["--replicates", "10", "--steps", "10", "--burn-in", "-1"], "--burn-in"),
     (["--replicates", "10", "--steps", "10", "--memory-limit", "a lot"], "not a memory size"),
     (["--replicates", "1e6", "--steps", "10", "--memory-limit", "10MB"], "over the memory limit"),
 ])

@@ -530,29 +530,33 @@ def test_sentence_speaks_in_the_step_unit():
 
 def test_plan_against_the_replicate_simulation_engine():
     # The plan's exact laws against core.simulate (an independent sampler: exact integer
-    # alias tables).  Its conventions: `steps` counts the burn-in too, and the kept draws are
-    # at steps burn_in + 1, burn_in + 1 + s, ...; so the plan (B, T, s) with m = T // s
-    # samples at B, B + s, ..., B + (m-1)s is the run burn_in = B - 1,
-    # steps = B + (m-1)s, stride s.
+    # alias tables), which follows the same run convention: a burn-in of B steps, then T
+    # steps; the ensemble at step B + T, the kept draws at B, B + s, ..., B + (m-1)s with
+    # m = T // s.  The same (B, T, s) is given to both, with no translation.
     from scipy.stats import chisquare
 
-    from core.simulate import run
+    from core.simulate import compare, run
 
     P = _pump()
     R, B, T, s = 4000, 3, 600, 3
     final = check_plan(P, Plan(1, T, burn_in=B, replicates=R))
-    res = run(P, replicates=R, steps=B + T, start=1, seed=20240601)
+    res = run(P, replicates=R, steps=T, burn_in=B, start=1, seed=20240601)
+    assert res.step == B + T
     # multinomial counts at the final step: chi-square at alpha = 1e-6
     assert chisquare(res.ensemble, final.expected_estimate * R).pvalue > 1e-6
+    # the engine's own exact law at its final step is the plan's (two implementations, 1e-12)
+    assert np.allclose(compare(res, P).exact_at_step, final.expected_estimate, rtol=0, atol=1e-12)
     avg = check_plan(P, Plan(1, T, burn_in=B, stride=s, estimator="average", replicates=R))
     m = T // s
-    res = run(P, replicates=R, steps=B + (m - 1) * s, burn_in=B - 1, stride=s, start=1, seed=99, tracked=R)
+    res = run(P, replicates=R, steps=T, burn_in=B, stride=s, start=1, seed=99, tracked=R)
     assert res.kept == m
     per_rep = res.replicate_counts() / m  # (R, n) time averages of every replicate
     se = per_rep.std(axis=0, ddof=1) / math.sqrt(R)
     # mean within 5 standard errors per state (two-sided normal tail 5.7e-7)
     assert np.all(np.abs(per_rep.mean(axis=0) - avg.expected_estimate) <= 5 * se)
     assert np.allclose(res.time_average, per_rep.mean(axis=0), rtol=1e-12)
+    # the exact mean of the kept draws the engine reports is the plan's estimate (1e-12)
+    assert np.allclose(compare(res, P).window_mean, avg.expected_estimate, rtol=0, atol=1e-12)
 
 
 @pytest.mark.parametrize("estimator,B,s", [("final", 0, 1), ("final", 7, 1), ("average", 0, 1), ("average", 5, 3)])

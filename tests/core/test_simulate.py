@@ -167,19 +167,21 @@ def _fingerprint(sim):
 
 
 @pytest.mark.parametrize("kind", ["split", "wide"])
-def test_same_seed_same_result_whatever_the_chunks_and_snapshots(kind):
+@pytest.mark.parametrize("burn_in", [0, 13])
+def test_same_seed_same_result_whatever_the_chunks_and_snapshots(kind, burn_in):
     P = _random_chain(np.random.default_rng(6), 12, 0.5)
     table = cell_table(P, kind=kind)
+    opts = dict(replicates=37, steps=300, burn_in=burn_in, stride=3, seed=2024, table=table, tracked=20, paths=5,
+                path_length=40)
     prints = []
     for every, chunk in [(None, None), (1, 1), (7, 3), (1000, 1000), (5, 64)]:
-        sim = ReplicateSimulation(P, replicates=37, steps=300, burn_in=13, stride=3, seed=2024, table=table,
-                                  tracked=20, paths=5, path_length=40)
+        sim = ReplicateSimulation(P, **opts)
         for _ in sim.snapshots(every=every, chunk=chunk):
             pass
+        assert sim.t == burn_in + 300
         prints.append(_fingerprint(sim))
     # advance() in uneven pieces gives the same too
-    sim = ReplicateSimulation(P, replicates=37, steps=300, burn_in=13, stride=3, seed=2024, table=table,
-                              tracked=20, paths=5, path_length=40)
+    sim = ReplicateSimulation(P, **opts)
     for k in (1, 2, 50, 100, 200):
         sim.advance(k)
     prints.append(_fingerprint(sim))
@@ -209,15 +211,71 @@ def test_different_seeds_differ_and_seed_is_reported():
 
 
 def test_snapshots_report_progress():
+    # The run convention of core.plan: burn-in B = 4, then T = 95 steps (99 in all); the kept draws are the
+    # states at steps B, B + s, ..., B + (m-1) s with m = floor(T / s) = 47, i.e. 4, 6, ..., 96.
     sim = ReplicateSimulation(OZ, replicates=100, steps=95, seed=3, burn_in=4, stride=2)
+    assert sim.total_steps == 99 and sim.kept_planned == 47
+    kept_steps = [4 + 2 * j for j in range(95 // 2)]
     snaps = list(sim.snapshots(every=10))
-    assert [s.step for s in snaps] == [10, 20, 30, 40, 50, 60, 70, 80, 90, 95]
-    assert snaps[-1].done and not snaps[-1].cancelled
+    assert [s.step for s in snaps] == [10, 20, 30, 40, 50, 60, 70, 80, 90, 99]
+    assert snaps[-1].done and not snaps[-1].cancelled and snaps[-1].progress == 1.0
     for s in snaps:
+        assert s.steps == 95 and s.burn_in == 4 and s.total_steps == 99
+        assert s.progress == s.step / 99
         assert s.ensemble.sum() == 100
-        assert s.kept == max(0, (s.step - 5) // 2 + 1)
+        assert s.kept == sum(1 for t in kept_steps if t <= s.step)
         assert s.occupancy.sum() == s.kept * 100
         assert not s.ensemble.flags.writeable
+    assert sim.result().kept == 47 and sim.result().total_steps == 99
+
+
+def test_kept_draws_and_final_step_follow_the_plan_convention():
+    # A deterministic 3-cycle 0 -> 1 -> 2 -> 0 makes the convention visible exactly: X_t = t mod 3 from 0.
+    # B = 0, s = 1, T = 4: the kept draws are X_0 .. X_3 = 0, 1, 2, 0 and the ensemble is X_4 = 1.
+    C = np.array([[0.0, 1.0, 0.0], [0.0, 0.0, 1.0], [1.0, 0.0, 0.0]])
+    for kernel in ("scalar", "vector"):
+        res = run(C, replicates=20, steps=4, start=0, seed=1, _kernel=kernel)
+        assert res.kept == 4 and res.step == res.total_steps == 4
+        assert res.occupancy.tolist() == [2 * 20, 1 * 20, 1 * 20]
+        assert res.ensemble.tolist() == [0, 20, 0]
+        # B = 2, T = 5, s = 2: m = 2 draws, at steps 2 and 4 (states 2 and 1); the ensemble is X_7 = 1
+        res = run(C, replicates=20, steps=5, burn_in=2, stride=2, start=0, seed=1, _kernel=kernel)
+        assert res.kept == 2 and res.step == 7
+        assert res.occupancy.tolist() == [0, 20, 20]
+        assert res.ensemble.tolist() == [0, 20, 0]
+    # a snapshot before any step already holds the start as the first kept draw when B = 0
+    sim = ReplicateSimulation(C, replicates=5, steps=3, start=2, seed=1)
+    s0 = sim.snapshot()
+    assert s0.step == 0 and s0.kept == 1 and s0.occupancy.tolist() == [0, 0, 5]
+    # ... and none when there is a burn-in; a burn-in longer than T is fine
+    sim = ReplicateSimulation(C, replicates=5, steps=3, burn_in=10, start=2, seed=1)
+    assert sim.snapshot().kept == 0 and sim.total_steps == 13
+
+
+def test_exact_values_are_those_of_the_plan_check():
+    # compare() and core.plan.check_plan describe the same run for the same (B, T, s): the ensemble's law
+    # pi0 P^(B+T) and the kept draws' mean (1/m) sum_{j<m} pi0 P^(B+js), m = floor(T/s), both checked by
+    # direct summation with numpy.linalg.matrix_power (the definitions of core.plan's docstring / the
+    # plan-check issue) to 1e-12.
+    from core.plan import Plan, check_plan
+
+    P = _random_chain(np.random.default_rng(31), 5, 0.6)
+    B, T, s = 7, 23, 3
+    pi0 = np.eye(5)[2]
+    rep = compare(run(P, replicates=50, steps=T, burn_in=B, stride=s, start=2, seed=30), P)
+    m = T // s
+    final = pi0 @ np.linalg.matrix_power(P, B + T)
+    mean = sum(pi0 @ np.linalg.matrix_power(P, B + j * s) for j in range(m)) / m
+    assert rep.step == B + T and rep.result.kept == m
+    assert np.allclose(rep.exact_at_step, final, rtol=0, atol=1e-12)
+    assert np.allclose(rep.window_mean, mean, rtol=0, atol=1e-12)
+    plan_final = check_plan(P, Plan(2, T, burn_in=B, stride=s, estimator="final"))
+    plan_avg = check_plan(P, Plan(2, T, burn_in=B, stride=s, estimator="average"))
+    assert np.allclose(rep.exact_at_step, plan_final.expected_estimate, rtol=0, atol=1e-12)
+    assert np.allclose(rep.window_mean, plan_avg.expected_estimate, rtol=0, atol=1e-12)
+    doc = rep.to_json()
+    assert (doc["steps"], doc["burn_in"], doc["stride"], doc["total_steps"], doc["kept"]) == (T, B, s, B + T, m)
+    assert doc["curve"]["steps"][-1] == B + T
 
 
 def test_paths_are_bounded_and_end_at_the_current_states():
@@ -288,8 +346,10 @@ def test_closing_the_generator_stops_the_run():
     (dict(replicates=0, steps=10), "replicates must be between 1"),
     (dict(replicates=10**6 + 1, steps=10), "replicates must be between 1"),
     (dict(replicates=10, steps=0), "steps must be between 1"),
-    (dict(replicates=10, steps=10, burn_in=10), "burn_in .* must be smaller than steps"),
+    (dict(replicates=10, steps=10, burn_in=-1), "burn_in must be between 0"),
+    (dict(replicates=10, steps=10, stride=11), r"stride \(11\) must be at most steps \(10\)"),
     (dict(replicates=10, steps=10, stride=0), "stride must be"),
+    (dict(replicates=10, steps=10**12, burn_in=1), "burn_in \\+ steps"),
     (dict(replicates=2.5, steps=10), "whole number"),
     (dict(replicates=10, steps=10, start=7), "out of range"),
 ])
@@ -331,18 +391,23 @@ def test_tracked_replicates_default_and_cap():
 # the issue's scenarios
 
 
-def test_periodic_chain_ensemble_stays_in_the_cyclic_subclass():
+@pytest.mark.parametrize("burn_in", [0, 5])
+def test_periodic_chain_ensemble_stays_in_the_cyclic_subclass(burn_in):
     # Ehrenfest urn (G&S Ex. 11.17, E3): period 2, cyclic classes {0,2,4} and {1,3} [seen].  Started in
-    # state 0, at every even step the ensemble has exactly zero mass on {1, 3}, at every odd step on {0,2,4}.
+    # state 0, at every even step the ensemble has exactly zero mass on {1, 3}, at every odd step on {0,2,4}
+    # (steps count from the start, burn-in included).
     s = classify(EHRENFEST)
     cls = s.classes[s.closed[0]]
     assert cls.period == 2 and set(map(frozenset, cls.cyclic_subclasses)) == {frozenset({0, 2, 4}),
                                                                             frozenset({1, 3})}
-    sim = ReplicateSimulation(EHRENFEST, replicates=20000, steps=200, start=0, seed=12)
+    sim = ReplicateSimulation(EHRENFEST, replicates=20000, steps=200, burn_in=burn_in, start=0, seed=12)
+    seen = []
     for snap in sim.snapshots(every=1):
+        seen.append(snap.step)
         odd = snap.step % 2
         assert snap.ensemble[[0, 2, 4]].sum() == (0 if odd else 20000)
         assert snap.ensemble[[1, 3]].sum() == (20000 if odd else 0)
+    assert seen == list(range(1, burn_in + 201))
 
 
 def test_period_three_chain_ensemble_at_multiples_of_the_period():
@@ -432,12 +497,15 @@ def test_engine_rhat_equals_direct_rank_rhat_on_stored_paths():
     P = _trap_chain(leave=0.02, back=0.01)
     R, T, B, s = 12, 401, 10, 3
     sim = ReplicateSimulation(P, replicates=R, steps=T, burn_in=B, stride=s, start=0, seed=19, tracked=R,
-                              paths=R, path_length=T + 1)
+                              paths=R, path_length=B + T + 1)
     res = sim.run()
     rep = compare(res, P)
-    paths = res.paths  # (R, T + 1), column t is the state at step t
-    kept = paths[:, B + 1::s]
-    assert kept.shape[1] == res.kept
+    paths = res.paths  # (R, B + T + 1), column t is the state at step t
+    assert paths.shape == (R, B + T + 1)
+    m = T // s
+    kept = paths[:, B:B + (m - 1) * s + 1:s]  # steps B, B + s, ..., B + (m-1)s (core.plan's convention)
+    assert kept.shape[1] == res.kept == m
+    assert res.ensemble.tolist() == np.bincount(paths[:, B + T], minlength=3).tolist()
     draws = rep.rhat_draws
     assert draws == 2 * (res.batches // 2) * res.batch_length
     x = kept[:, :draws]
@@ -486,6 +554,7 @@ def test_report_json_has_the_contract_keys():
         assert key in doc
     assert set(doc["ensemble"]) == {"R", "N", "S"} and sum(doc["ensemble"].values()) == 30
     assert doc["steps"] == 100 and doc["seed"] == 22
+    assert doc["burn_in"] == 0 and doc["stride"] == 1 and doc["total_steps"] == 100 and doc["kept"] == 100
 
 
 def test_cancelled_run_reports_the_steps_done():
