@@ -62,7 +62,9 @@ def raw_fill(rng, buf, steps):
 
 
 def engine(P, table, *, stats: bool):
-    sim = ReplicateSimulation(P, replicates=R, steps=T, seed=1, table=table, burn_in=0 if stats else T - 1)
+    # T steps in all either way: every draw kept (B = 0), or one kept draw after a burn-in of T - 1 steps
+    sim = ReplicateSimulation(P, replicates=R, steps=T if stats else 1, seed=1, table=table,
+                              burn_in=0 if stats else T - 1)
     t = time.perf_counter()
     sim.advance(T)
     return time.perf_counter() - t
