@@ -84,7 +84,7 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
         f"Plan check: {chain.name or path}",
         f"  start         {ids[check.start_index]!r}" + ("" if start_given else " (the first state; choose with --start)"),
         f"  run           {format_steps(plan.steps, chain.step)}",
-        f"  burn-in       {format_steps(plan.burn_in, chain.step)}",
+        f"  burn-in       {format_steps(plan.burn_in, chain.step) if plan.burn_in else 'none'}",
         f"  replicates    {plan.replicates:,}",
         f"  estimator     {est_name}",
         f"  verdict       {check.verdict.upper()}: the estimate converges to a law {check.tv:.4g} away "
