@@ -527,7 +527,8 @@ def reads_matrix_csv(text: str, *, source: str | None = None, name: str = "") ->
             f"states {', '.join(map(repr, missing))} have a column but no row", path=source
         )
     states = tuple(State(c) for c in row_ids)
-    return Chain(states=states, transitions=tuple(trans), name=name)
+    return Chain(states=states, transitions=tuple(trans), name=name,
+                 state_limit=_env_int("LONGRUN_MAX_STATES", Chain.state_limit))
 
 
 def read_matrix_csv(path: str | os.PathLike) -> Chain:
