@@ -1,0 +1,329 @@
+"""Resource guards: every limit refuses clearly, naming the limit and how to change it.
+
+A request too big for the machine (replicates x states in a simulation, states in the
+dense analysis, the size of a report, of a file read, of an observation CSV) must be
+refused before the work starts, with a message that states the limit and the option or
+environment variable that changes it, exit status 2 at the command line, and no
+traceback; never a freeze or an out-of-memory kill.  Raising the limit must then let
+the same request through.  Common practice for tools that take untrusted input and
+user-sized workloads (fail early, say why, say how).
+
+Environment variables read when a module is imported (``LONGRUN_MAX_FILE_MB``,
+``LONGRUN_MAX_ROWS``) are checked in a fresh ``python -m core`` process, exactly as a
+user sets them; the report command runs in a subprocess too, so Qt never enters this
+Qt-free test process.
+"""
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import textwrap
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from core.analysis import analyze
+from core.cli import main
+from core.errors import LimitError, ValidationError
+from core.io import load_chain, read_matrix_csv, save_chain
+from core.model import DENSE_STATE_LIMIT, Chain, State, Transition
+from core.simulate import DEFAULT_MEMORY_LIMIT, MEMORY_ENV, ReplicateSimulation
+
+ROOT = Path(__file__).resolve().parents[2]
+PUMP = ROOT / "sample_models" / "pump_wear.json"
+MiB = 1024 * 1024
+
+
+def cli(*args, env=None, cwd=None, timeout=120):
+    """``python -m core ARGS`` in a fresh process (environment as a user would set it)."""
+    full = dict(os.environ, OPENBLAS_NUM_THREADS="1", QT_QPA_PLATFORM="offscreen", PYTHONPATH=str(ROOT))
+    full.update(env or {})
+    return subprocess.run([sys.executable, "-m", "core", *map(str, args)], capture_output=True, text=True,
+                          env=full, cwd=str(cwd or ROOT), timeout=timeout)
+
+
+def run(capsys, *argv):
+    code = main([str(a) for a in argv])
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def assert_clean_refusal(code, err, *needles):
+    assert code == 2, err
+    assert "Traceback" not in err
+    assert err.startswith("longrun: error:"), err
+    for needle in needles:
+        assert needle in err, f"{needle!r} not in {err!r}"
+
+
+def ring(n: int) -> Chain:
+    ids = [f"s{i}" for i in range(n)]
+    return Chain(states=tuple(State(s) for s in ids),
+                 transitions=tuple(Transition(ids[i], ids[(i + 1) % n], "1") for i in range(n)), name=f"ring{n}")
+
+
+def ring_csv(path: Path, n: int) -> Path:
+    ids = [f"s{i}" for i in range(n)]
+    lines = ["from," + ",".join(ids)]
+    lines += [ids[i] + "," + ",".join("1" if j == (i + 1) % n else "0" for j in range(n)) for i in range(n)]
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def dense_chain_file(path: Path, n: int, seed: int = 3) -> Path:
+    rng = np.random.default_rng(seed)
+    W = rng.random((n, n)) + 0.01
+    P = W / W.sum(axis=1, keepdims=True)
+    ids = [f"q{i}" for i in range(n)]
+    trans = [Transition(ids[i], ids[j], repr(float(P[i, j]))) for i in range(n) for j in range(n) if j != i]
+    trans += [Transition(ids[i], ids[i], "rest") for i in range(n)]
+    save_chain(Chain(states=tuple(State(s) for s in ids), transitions=tuple(trans), name="dense"), path)
+    return path
+
+
+# ---------------------------------------------------------------------------
+# replicates x states memory in simulate
+
+
+def test_simulation_guard_api_names_the_estimate_the_limit_and_how_to_raise_it():
+    P = load_chain(PUMP).matrix()
+    with pytest.raises(LimitError) as info:
+        ReplicateSimulation(P, replicates=10**6, steps=1000, tracked=10**6, memory_limit=64 * MiB)
+    msg = str(info.value)
+    assert "this run needs about" in msg and "over the memory limit of 64 MiB" in msg
+    assert "tracked" in msg and "replicates" in msg  # the parts that make it big are named
+    assert "--memory-limit" in msg and MEMORY_ENV in msg
+    # the same run under a limit that covers its estimate is accepted (construction only: not run here)
+    sim = ReplicateSimulation(P, replicates=10**6, steps=1000, tracked=10**6, memory_limit=4 * 1024 * MiB)
+    assert sim.memory["total"] > 64 * MiB
+
+
+def test_simulation_guard_refuses_before_allocating():
+    # 1500 dense states, 10^6 replicates all tracked: the counters alone would take about
+    # 2 * 10^6 * 9 * 1500 * 4 bytes = 108 GB.  The refusal must cost no more than a few copies of P.
+    rng = np.random.default_rng(5)
+    W = rng.random((1500, 1500))
+    P = W / W.sum(axis=1, keepdims=True)
+    tracemalloc.start()
+    try:
+        with pytest.raises(LimitError, match=r"over the memory limit of 2 GiB"):
+            ReplicateSimulation(P, replicates=10**6, steps=10**4, tracked=10**6)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    print(f"\nrefused run: peak traced memory {peak / MiB:.1f} MiB for a {P.nbytes / MiB:.1f} MiB matrix")
+    assert peak < 4 * P.nbytes  # a check copy and a support mask, nothing of the run's size
+    assert DEFAULT_MEMORY_LIMIT == 2 * 1024 * MiB
+
+
+def test_simulate_command_refuses_with_exit_2_and_accepts_a_raised_limit(capsys, monkeypatch):
+    code, _, err = run(capsys, "simulate", PUMP, "-R", "1000", "-T", "200", "--seed", "1", "--memory-limit", "1MiB")
+    assert_clean_refusal(code, err, "over the memory limit of 1 MiB", "--memory-limit", MEMORY_ENV)
+    code, out, err = run(capsys, "simulate", PUMP, "-R", "1000", "-T", "200", "--seed", "1", "--memory-limit",
+                         "64MiB", "--json")
+    assert code == 0, err
+    assert json.loads(out)["replicates"] == 1000
+    # the environment variable is the other way to set it
+    monkeypatch.setenv(MEMORY_ENV, "1MiB")
+    code, _, err = run(capsys, "simulate", PUMP, "-R", "1000", "-T", "200", "--seed", "1")
+    assert_clean_refusal(code, err, "over the memory limit of 1 MiB", MEMORY_ENV)
+    # the option wins over the environment
+    code, out, err = run(capsys, "simulate", PUMP, "-R", "1000", "-T", "200", "--seed", "1", "--memory-limit",
+                         "64MiB", "--json")
+    assert code == 0, err
+    # a limit that is not a size is named
+    monkeypatch.setenv(MEMORY_ENV, "plenty")
+    code, _, err = run(capsys, "simulate", PUMP, "-R", "10", "-T", "10")
+    assert_clean_refusal(code, err, MEMORY_ENV, "'plenty' is not a memory size")
+    monkeypatch.delenv(MEMORY_ENV)
+    code, _, err = run(capsys, "simulate", PUMP, "-R", "10", "-T", "10", "--memory-limit=-5GB")
+    assert_clean_refusal(code, err, "'-5GB' is not a memory size")
+
+
+def test_replicate_count_limit_names_the_option(capsys):
+    code, _, err = run(capsys, "simulate", PUMP, "-R", "2e6", "-T", "10")
+    assert_clean_refusal(code, err, "replicates must be between 1 and 1e+06, not 2000000")
+
+
+@pytest.mark.timeout(120)
+def test_default_memory_guard_holds_under_an_address_space_limit(tmp_path):
+    # The run below needs ~4.3 GB by the guard's estimate (10^6 tracked replicates x 60 states of
+    # counters).  Under a 1.5 GiB address-space limit an allocation of that size would raise
+    # MemoryError (a traceback, exit 1); the guard must refuse first, with exit 2.
+    f = dense_chain_file(tmp_path / "sixty.json", 60)
+    script = textwrap.dedent(f"""
+        import resource, sys
+        resource.setrlimit(resource.RLIMIT_AS, (1536 * 2**20, resource.RLIM_INFINITY))
+        from core.cli import main
+        sys.exit(main(["simulate", {str(f)!r}, "-R", "1e6", "--tracked", "1e6", "-T", "1e4", "--seed", "1"]))
+    """)
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="1", PYTHONPATH=str(ROOT))
+    env.pop(MEMORY_ENV, None)
+    r = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, env=env, timeout=100)
+    assert_clean_refusal(r.returncode, r.stderr, "over the memory limit of 2 GiB", "--memory-limit", MEMORY_ENV)
+
+
+# ---------------------------------------------------------------------------
+# analysis size: the dense-analysis state limit
+
+
+def test_default_state_limit_refuses_5001_states_and_the_variable_raises_it(tmp_path, capsys, monkeypatch):
+    f = tmp_path / "big.json"
+    save_chain(ring(DENSE_STATE_LIMIT + 1), f)
+    code, _, err = run(capsys, "analyze", f)
+    assert_clean_refusal(code, err, "5001 states, more than the limit of 5000", "--max-states",
+                         "LONGRUN_MAX_STATES")
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "6000")
+    code, out, err = run(capsys, "validate", f)
+    assert code == 0 and "valid (5001 states" in out, err
+
+
+@pytest.mark.parametrize("kind", ["json", "csv"])
+def test_state_limit_option_and_variable_work_for_chain_files_and_matrix_csv(tmp_path, capsys, monkeypatch, kind):
+    f = tmp_path / f"ring6.{kind}"
+    if kind == "json":
+        save_chain(ring(6), f)
+    else:
+        ring_csv(f, 6)
+    need = ("6 states, more than the limit of 5", "--max-states", "LONGRUN_MAX_STATES")
+    code, _, err = run(capsys, "analyze", f, "--max-states", "5")
+    assert_clean_refusal(code, err, *need)
+    code, _, err = run(capsys, "simulate", f, "-R", "10", "-T", "10", "--max-states", "5")
+    assert_clean_refusal(code, err, *need)
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "5")
+    code, _, err = run(capsys, "analyze", f)
+    assert_clean_refusal(code, err, *need)
+    code, _, err = run(capsys, "simulate", f, "-R", "10", "-T", "10")
+    assert_clean_refusal(code, err, *need)
+    code, out, err = run(capsys, "analyze", f, "--max-states", "6", "--json")  # the option wins
+    assert code == 0, err
+    assert len(json.loads(out)["states"]) == 6
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "6")
+    code, out, err = run(capsys, "analyze", f)
+    assert code == 0, err
+    code, _, err = run(capsys, "analyze", f, "--max-states", "0")
+    assert_clean_refusal(code, err, "--max-states must be at least 1")
+
+
+def test_state_limit_in_the_api_is_a_validation_problem(monkeypatch):
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "5")
+    from core.io import dumps_chain, loads_chain
+
+    chain = loads_chain(dumps_chain(ring(6)))
+    assert chain.state_limit == 5
+    [problem] = chain.problems
+    assert problem.code == "too-many-states" and "LONGRUN_MAX_STATES" in problem.message
+    with pytest.raises(ValidationError, match="more than the limit of 5"):
+        analyze(chain)
+    with pytest.raises(ValidationError, match="more than the limit of 5"):
+        chain.matrix()
+
+
+def test_matrix_csv_reader_follows_the_state_limit_variable(tmp_path, monkeypatch):
+    f = ring_csv(tmp_path / "ring6.csv", 6)
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "5")
+    assert read_matrix_csv(f).state_limit == 5
+    assert [p.code for p in read_matrix_csv(f).problems] == ["too-many-states"]
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "9000")
+    assert read_matrix_csv(f).state_limit == 9000 and not read_matrix_csv(f).problems
+
+
+# ---------------------------------------------------------------------------
+# report size
+
+
+@pytest.mark.timeout(120)
+def test_report_size_limit_by_option_and_variable_leaves_an_existing_file_alone(tmp_path):
+    out = tmp_path / "report.html"
+    out.write_text("an earlier report the user keeps", encoding="utf-8")
+    r = cli("report", PUMP, "-o", out, "--max-size-mb", "0.02")
+    assert_clean_refusal(r.returncode, r.stderr, "more than the limit of", "MiB", "--max-size-mb",
+                         "LONGRUN_MAX_REPORT_MB", "--max-table-states")
+    assert out.read_text(encoding="utf-8") == "an earlier report the user keeps"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["report.html"]  # no partial or temporary file
+    r = cli("report", PUMP, "-o", out, env={"LONGRUN_MAX_REPORT_MB": "0.02"})
+    assert_clean_refusal(r.returncode, r.stderr, "more than the limit of", "LONGRUN_MAX_REPORT_MB")
+    assert out.read_text(encoding="utf-8") == "an earlier report the user keeps"
+    r = cli("report", PUMP, "-o", out, env={"LONGRUN_MAX_REPORT_MB": "big"})
+    assert_clean_refusal(r.returncode, r.stderr, "LONGRUN_MAX_REPORT_MB='big' is not a number")
+    r = cli("report", PUMP, "-o", out, "--max-size-mb", "0")
+    assert_clean_refusal(r.returncode, r.stderr, "--max-size-mb must be positive")
+    assert out.read_text(encoding="utf-8") == "an earlier report the user keeps"
+
+
+# ---------------------------------------------------------------------------
+# file size
+
+
+def _big_chain_text(megabytes: float) -> str:
+    doc = {"format": "longrun-chain", "version": 1, "description": "x" * int(megabytes * MiB),
+           "states": [{"id": "a"}], "transitions": [{"from": "a", "to": "a", "p": 1}]}
+    return json.dumps(doc)
+
+
+@pytest.mark.timeout(120)
+def test_file_size_limit_for_chain_files_matrix_csv_and_observations(tmp_path):
+    (tmp_path / "big.json").write_text(_big_chain_text(1.5), encoding="utf-8")
+    csv = ring_csv(tmp_path / "big.csv", 6)
+    with open(csv, "a", encoding="utf-8") as fh:
+        fh.write("\n" * int(1.5 * MiB))  # blank lines: a big file with a small matrix
+    obs = tmp_path / "obs.csv"
+    obs.write_text("state\n" + "a\nb\n" * int(0.4 * MiB), encoding="utf-8")
+    env = {"LONGRUN_MAX_FILE_MB": "1"}
+    for args in (["validate", "big.json"], ["analyze", "big.csv"],
+                 ["fit", "obs.csv", "-o", "fitted.json", "--draws", "0"]):
+        r = cli(*args, env=env, cwd=tmp_path)
+        assert_clean_refusal(r.returncode, r.stderr, "larger than the limit of 1 MiB", "LONGRUN_MAX_FILE_MB")
+    assert not (tmp_path / "fitted.json").exists()
+    env = {"LONGRUN_MAX_FILE_MB": "2"}
+    for args in (["validate", "big.json"], ["analyze", "big.csv"],
+                 ["fit", "obs.csv", "-o", "fitted.json", "--draws", "0"]):
+        r = cli(*args, env=env, cwd=tmp_path)
+        assert r.returncode == 0, r.stderr
+    assert load_chain(tmp_path / "fitted.json").n == 2
+
+
+def test_default_file_size_limit_is_checked_before_reading(tmp_path, capsys):
+    f = tmp_path / "sparse.json"
+    with open(f, "wb") as fh:  # a 65 MiB sparse file: refused from its size, never read
+        fh.truncate(65 * MiB)
+    tracemalloc.start()
+    try:
+        code, _, err = run(capsys, "validate", f)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert_clean_refusal(code, err, "65.0 MiB, larger than the limit of 64 MiB", "LONGRUN_MAX_FILE_MB")
+    assert peak < 8 * MiB
+
+
+# ---------------------------------------------------------------------------
+# observation rows in `longrun fit`
+
+
+@pytest.mark.timeout(120)
+def test_observation_row_limit_in_fit(tmp_path):
+    rows = tmp_path / "rows.csv"
+    labels = ["up", "down", "down", "up", "idle"] * 21  # 105 observations
+    rows.write_text("state\n" + "\n".join(labels[:101]) + "\n", encoding="utf-8")
+    r = cli("fit", rows, "-o", tmp_path / "f.json", "--draws", "0", env={"LONGRUN_MAX_ROWS": "100"})
+    assert_clean_refusal(r.returncode, r.stderr, "more than 100 data rows", "LONGRUN_MAX_ROWS")
+    assert not (tmp_path / "f.json").exists()
+    rows.write_text("state\n" + "\n".join(labels[:100]) + "\n", encoding="utf-8")
+    r = cli("fit", rows, "-o", tmp_path / "f.json", "--draws", "0", env={"LONGRUN_MAX_ROWS": "100"})
+    assert r.returncode == 0, r.stderr
+    fitted = load_chain(tmp_path / "f.json")
+    assert sorted(s.display_name for s in fitted.states) == ["down", "idle", "up"]
+    assert sum(map(sum, fitted.extra["transition_counts"]["matrix"])) == 99  # 100 observations, one sequence
+
+
+def test_default_observation_row_limit(tmp_path):
+    from core.datafile import MAX_ROWS, parse_table
+
+    assert MAX_ROWS == 1_000_000
+    with pytest.raises(LimitError, match=r"more than 1,000,000 data rows.*LONGRUN_MAX_ROWS"):
+        parse_table("state\n" + "a\n" * (MAX_ROWS + 1), source="many.csv")
