@@ -38,12 +38,35 @@ PUMP = ROOT / "sample_models" / "pump_wear.json"
 MiB = 1024 * 1024
 
 
-def cli(*args, env=None, cwd=None, timeout=120):
-    """``python -m core ARGS`` in a fresh process (environment as a user would set it)."""
+_DRIVER = textwrap.dedent("""
+    import contextlib, io, json, sys
+    from core.cli import main
+    results = []
+    for argv in json.loads(sys.argv[1]):
+        out, err = io.StringIO(), io.StringIO()
+        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+            try:
+                code = main(argv)
+            except SystemExit as exc:
+                code = exc.code
+        results.append([code, out.getvalue(), err.getvalue()])
+    sys.stdout.write(json.dumps(results))
+""")
+
+
+def cli(*commands, env=None, cwd=None, timeout=120):
+    """Run each command line of ``commands`` through ``longrun``'s entry point in one fresh process.
+
+    The environment is set before anything is imported, as a user sets it in a shell.
+    Returns ``[(exit status, stdout, stderr), ...]``.
+    """
     full = dict(os.environ, OPENBLAS_NUM_THREADS="1", QT_QPA_PLATFORM="offscreen", PYTHONPATH=str(ROOT))
     full.update(env or {})
-    return subprocess.run([sys.executable, "-m", "core", *map(str, args)], capture_output=True, text=True,
-                          env=full, cwd=str(cwd or ROOT), timeout=timeout)
+    argvs = [[str(a) for a in argv] for argv in commands]
+    r = subprocess.run([sys.executable, "-c", _DRIVER, json.dumps(argvs)], capture_output=True, text=True,
+                       env=full, cwd=str(cwd or ROOT), timeout=timeout)
+    assert r.returncode == 0, r.stderr  # the driver itself never fails
+    return [tuple(x) for x in json.loads(r.stdout)]
 
 
 def run(capsys, *argv):
@@ -239,20 +262,20 @@ def test_matrix_csv_reader_follows_the_state_limit_variable(tmp_path, monkeypatc
 @pytest.mark.timeout(120)
 def test_report_size_limit_by_option_and_variable_leaves_an_existing_file_alone(tmp_path):
     out = tmp_path / "report.html"
-    out.write_text("an earlier report the user keeps", encoding="utf-8")
-    r = cli("report", PUMP, "-o", out, "--max-size-mb", "0.02")
-    assert_clean_refusal(r.returncode, r.stderr, "more than the limit of", "MiB", "--max-size-mb",
-                         "LONGRUN_MAX_REPORT_MB", "--max-table-states")
-    assert out.read_text(encoding="utf-8") == "an earlier report the user keeps"
+    kept = "an earlier report the user keeps"
+    out.write_text(kept, encoding="utf-8")
+    [(code, _, err)] = cli(["report", PUMP, "-o", out, "--max-size-mb", "0.02"])
+    assert_clean_refusal(code, err, "more than the limit of", "MiB", "--max-size-mb", "LONGRUN_MAX_REPORT_MB",
+                         "--max-table-states")
+    assert out.read_text(encoding="utf-8") == kept
     assert sorted(p.name for p in tmp_path.iterdir()) == ["report.html"]  # no partial or temporary file
-    r = cli("report", PUMP, "-o", out, env={"LONGRUN_MAX_REPORT_MB": "0.02"})
-    assert_clean_refusal(r.returncode, r.stderr, "more than the limit of", "LONGRUN_MAX_REPORT_MB")
-    assert out.read_text(encoding="utf-8") == "an earlier report the user keeps"
-    r = cli("report", PUMP, "-o", out, env={"LONGRUN_MAX_REPORT_MB": "big"})
-    assert_clean_refusal(r.returncode, r.stderr, "LONGRUN_MAX_REPORT_MB='big' is not a number")
-    r = cli("report", PUMP, "-o", out, "--max-size-mb", "0")
-    assert_clean_refusal(r.returncode, r.stderr, "--max-size-mb must be positive")
-    assert out.read_text(encoding="utf-8") == "an earlier report the user keeps"
+    [(code, _, err), (code0, _, err0)] = cli(["report", PUMP, "-o", out], ["report", PUMP, "-o", out,
+                                             "--max-size-mb", "0"], env={"LONGRUN_MAX_REPORT_MB": "0.02"})
+    assert_clean_refusal(code, err, "more than the limit of", "LONGRUN_MAX_REPORT_MB")
+    assert_clean_refusal(code0, err0, "--max-size-mb must be positive")
+    [(code, _, err)] = cli(["report", PUMP, "-o", out], env={"LONGRUN_MAX_REPORT_MB": "big"})
+    assert_clean_refusal(code, err, "LONGRUN_MAX_REPORT_MB='big' is not a number")
+    assert out.read_text(encoding="utf-8") == kept
 
 
 # ---------------------------------------------------------------------------
@@ -270,20 +293,16 @@ def test_file_size_limit_for_chain_files_matrix_csv_and_observations(tmp_path):
     (tmp_path / "big.json").write_text(_big_chain_text(1.5), encoding="utf-8")
     csv = ring_csv(tmp_path / "big.csv", 6)
     with open(csv, "a", encoding="utf-8") as fh:
-        fh.write("\n" * int(1.5 * MiB))  # blank lines: a big file with a small matrix
+        fh.write((" " * 1023 + "\n") * 1536)  # blank lines: a big file with a small matrix
     obs = tmp_path / "obs.csv"
-    obs.write_text("state\n" + "a\nb\n" * int(0.4 * MiB), encoding="utf-8")
-    env = {"LONGRUN_MAX_FILE_MB": "1"}
-    for args in (["validate", "big.json"], ["analyze", "big.csv"],
-                 ["fit", "obs.csv", "-o", "fitted.json", "--draws", "0"]):
-        r = cli(*args, env=env, cwd=tmp_path)
-        assert_clean_refusal(r.returncode, r.stderr, "larger than the limit of 1 MiB", "LONGRUN_MAX_FILE_MB")
+    obs.write_text(("# " + "x" * 1022 + "\n") * 1536 + "state\n" + "a\nb\n" * 20, encoding="utf-8")  # comments
+    commands = (["validate", "big.json"], ["analyze", "big.csv"],
+                ["fit", "obs.csv", "-o", "fitted.json", "--draws", "0"])
+    for code, _, err in cli(*commands, env={"LONGRUN_MAX_FILE_MB": "1"}, cwd=tmp_path):
+        assert_clean_refusal(code, err, "larger than the limit of 1 MiB", "LONGRUN_MAX_FILE_MB")
     assert not (tmp_path / "fitted.json").exists()
-    env = {"LONGRUN_MAX_FILE_MB": "2"}
-    for args in (["validate", "big.json"], ["analyze", "big.csv"],
-                 ["fit", "obs.csv", "-o", "fitted.json", "--draws", "0"]):
-        r = cli(*args, env=env, cwd=tmp_path)
-        assert r.returncode == 0, r.stderr
+    for code, _, err in cli(*commands, env={"LONGRUN_MAX_FILE_MB": "2"}, cwd=tmp_path):
+        assert code == 0, err
     assert load_chain(tmp_path / "fitted.json").n == 2
 
 
@@ -310,13 +329,14 @@ def test_observation_row_limit_in_fit(tmp_path):
     rows = tmp_path / "rows.csv"
     labels = ["up", "down", "down", "up", "idle"] * 21  # 105 observations
     rows.write_text("state\n" + "\n".join(labels[:101]) + "\n", encoding="utf-8")
-    r = cli("fit", rows, "-o", tmp_path / "f.json", "--draws", "0", env={"LONGRUN_MAX_ROWS": "100"})
-    assert_clean_refusal(r.returncode, r.stderr, "more than 100 data rows", "LONGRUN_MAX_ROWS")
+    (tmp_path / "exact.csv").write_text("state\n" + "\n".join(labels[:100]) + "\n", encoding="utf-8")
+    [(code, _, err), (code_ok, _, err_ok)] = cli(
+        ["fit", rows, "-o", tmp_path / "f.json", "--draws", "0"],
+        ["fit", tmp_path / "exact.csv", "-o", tmp_path / "g.json", "--draws", "0"], env={"LONGRUN_MAX_ROWS": "100"})
+    assert_clean_refusal(code, err, "more than 100 data rows", "LONGRUN_MAX_ROWS")
     assert not (tmp_path / "f.json").exists()
-    rows.write_text("state\n" + "\n".join(labels[:100]) + "\n", encoding="utf-8")
-    r = cli("fit", rows, "-o", tmp_path / "f.json", "--draws", "0", env={"LONGRUN_MAX_ROWS": "100"})
-    assert r.returncode == 0, r.stderr
-    fitted = load_chain(tmp_path / "f.json")
+    assert code_ok == 0, err_ok
+    fitted = load_chain(tmp_path / "g.json")
     assert sorted(s.display_name for s in fitted.states) == ["down", "idle", "up"]
     assert sum(map(sum, fitted.extra["transition_counts"]["matrix"])) == 99  # 100 observations, one sequence
 
