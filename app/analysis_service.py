@@ -142,6 +142,20 @@ def validate(chain: Chain, generation: int = 0) -> ValidationReport:
 Job = Callable[[Chain, Any, Any], Any]
 
 
+def _preload() -> None:
+    """Import what the worker uses on the GUI thread, before the worker runs.
+
+    A first import inside the worker thread runs PySide's import hook there,
+    concurrently with the GUI thread, which can corrupt reference counts; so
+    every module a job needs is imported here (and a panel registering a job
+    imports its modules before calling :meth:`AnalysisService.register`).
+    """
+    import scipy.sparse  # noqa: F401
+    import scipy.sparse.csgraph  # noqa: F401
+
+    import core.structure  # noqa: F401
+
+
 class _Worker(QObject):
     validated = Signal(int, object)
     structured = Signal(int, object)
@@ -245,6 +259,7 @@ class AnalysisService(QObject):
 
     def __init__(self, document, *, delay_ms: int = 150, parent: QObject | None = None):
         super().__init__(parent)
+        _preload()
         self._doc = document
         self._jobs: dict[str, tuple[Job, bool]] = {}
         self._gen = 0
@@ -289,6 +304,8 @@ class AnalysisService(QObject):
         With ``needs_valid`` (the default) the job runs only for valid chains
         (``P`` the dense matrix, ``structure`` from ``classify``).  Registering
         re-runs the analysis so the new job gets a result for the current chain.
+        Import every module the job uses before registering it: a first import
+        inside the worker thread is unsafe with PySide.
         """
         self._jobs[name] = (fn, needs_valid)
         self.request(force=True)

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import Callable, Iterable
 
-from PySide6.QtCore import QEvent, QPointF, QRectF, Qt, QTimer, Signal
+from PySide6.QtCore import QEvent, QLineF, QPointF, QRectF, Qt, QTimer, Signal
 from PySide6.QtGui import (
     QBrush,
     QColor,
@@ -33,7 +33,10 @@ from PySide6.QtGui import (
     QPainterPath,
     QPainterPathStroker,
     QPen,
+    QPixmap,
     QPolygonF,
+    QStaticText,
+    QTransform,
 )
 from PySide6.QtWidgets import (
     QGraphicsItem,
@@ -49,13 +52,15 @@ from PySide6.QtWidgets import (
 from core.model import REST, Chain, State, Transition, parse_probability
 
 from . import palette as pal
-from .document import Document, probability_text
+from .document import Document, probability_text, transition_changes
 
 __all__ = ["ChainCanvas", "StateItem", "ArrowItem", "NodeStyle", "NODE_RADIUS"]
 
 NODE_RADIUS = 24.0
 RIM = 0.62            # inner share of the radius that moves; outside it connects
-LABEL_LOD = 0.45      # arrow labels are hidden below this zoom
+LABEL_LOD = 0.6       # arrow labels are hidden below this zoom (too small to read)
+SMOOTH_LOD = 0.6      # arrows are antialiased from this zoom on (and not while dragging)
+OVERVIEW_LOD = 0.3    # below this zoom arrows are drawn as one batch of plain lines
 MAX_ZOOM = 4.0
 MIN_ZOOM = 0.05
 _drag_tokens = itertools.count(1)
@@ -109,6 +114,8 @@ def styles_from_structure(chain: Chain, structure) -> dict[str, NodeStyle]:
 def _fmt_value(v: float) -> str:
     if v == 0:
         return "0"
+    if 0.9999 < v < 1:
+        return f"1 − {1 - v:.2g}"  # keep the tiny remainder visible
     if 1e-4 <= abs(v) < 1e4:
         return f"{v:.4g}"
     return f"{v:.3g}"
@@ -313,6 +320,8 @@ class ArrowItem(QGraphicsItem):
         self._bounds = QRectF()
         self._shape: QPainterPath | None = None
         self._text = ""
+        self.overview_line: QLineF | None = None
+        self.setVisible(canvas.lod >= OVERVIEW_LOD)
         self.label_t = 0.5
         self._loop_label = QPointF()
         self._width = pal.arrow_width(None)
@@ -353,8 +362,10 @@ class ArrowItem(QGraphicsItem):
             self._text, self._width, self._rare = text, width, rare
             self._shape = None
             self._relabel()
+        self._make_pens()
         self._update_tooltip()
         self.update()
+        self.canvas._overview_changed(self)
         return width_changed
 
     def _update_tooltip(self) -> None:
@@ -391,9 +402,9 @@ class ArrowItem(QGraphicsItem):
         ax, ay = pa.x(), pa.y()
         if self.is_loop:
             u = (math.cos(loop_angle), math.sin(loop_angle))
-            s1, s2 = _rot(u, -0.5), _rot(u, 0.5)
-            c1, c2 = _rot(u, -0.95), _rot(u, 0.95)
-            reach = r + 62
+            s1, s2 = _rot(u, -0.42), _rot(u, 0.42)
+            c1, c2 = _rot(u, -0.78), _rot(u, 0.78)
+            reach = r + 64
             p1 = (ax + r * s1[0], ay + r * s1[1])
             tip = (ax + r * s2[0], ay + r * s2[1])
             q1 = (ax + reach * c1[0], ay + reach * c1[1])
@@ -442,6 +453,10 @@ class ArrowItem(QGraphicsItem):
             QPointF(base[0] - perp[0] * head_half, base[1] - perp[1] * head_half),
         ])
         self._path = path
+        if self.overview_line is not None:
+            self.canvas._overview_changed(self)  # where it was
+        self.overview_line = QLineF(QPointF(*(p1 if self.is_loop else start)), QPointF(*tip))
+        self.canvas._overview_changed(self)
         self._loop_label = QPointF(*label)
         if self.is_loop:
             self._label_center = self._loop_label
@@ -483,35 +498,118 @@ class ArrowItem(QGraphicsItem):
     def label_scene_rect(self) -> QRectF:
         return self.mapRectToScene(self._label_rect)
 
-    def paint(self, painter: QPainter, option: QStyleOptionGraphicsItem, widget: QWidget | None = None) -> None:
-        lod = option.levelOfDetailFromTransform(painter.worldTransform())
+    def _make_pens(self) -> None:
         colour = pal.PROBLEM if self.problems else pal.INK
-        selected = self.isSelected()
-        if selected:
-            halo = QPen(pal.SELECT, self._width + 8)
-            halo.setCapStyle(Qt.PenCapStyle.RoundCap)
-            painter.setPen(halo)
-            painter.setBrush(Qt.BrushStyle.NoBrush)
-            painter.drawPath(self._path)
         pen = QPen(colour, self._width)
         pen.setCapStyle(Qt.PenCapStyle.FlatCap)
         if self._rare:
             pen.setStyle(Qt.PenStyle.CustomDashLine)
             pen.setDashPattern([4.0 / max(self._width, 0.5), 3.0 / max(self._width, 0.5)])
-        painter.setPen(pen)
+        halo = QPen(pal.SELECT, self._width + 8)
+        halo.setCapStyle(Qt.PenCapStyle.RoundCap)
+        self._colour = colour
+        self._pen = pen
+        self._halo = halo
+        self._frame = QPen(colour if self.problems else QColor(38, 49, 59, 70), 1)
+        self._static = QStaticText(self._text)
+        self._static.setTextFormat(Qt.TextFormat.PlainText)
+        self._static_font = self.canvas.italic_font if self._rare else self.canvas.label_font
+        self._static.prepare(QTransform(), self._static_font)
+
+    def paint(self, painter: QPainter, option: QStyleOptionGraphicsItem, widget: QWidget | None = None) -> None:
+        smooth = self.canvas.smooth
+        if not smooth:
+            painter.setRenderHint(QPainter.RenderHint.Antialiasing, False)
+        if self.isSelected():
+            painter.setPen(self._halo)
+            painter.setBrush(Qt.BrushStyle.NoBrush)
+            painter.drawPath(self._path)
+        painter.setPen(self._pen)
         painter.setBrush(Qt.BrushStyle.NoBrush)
         painter.drawPath(self._path)
         painter.setPen(Qt.PenStyle.NoPen)
-        painter.setBrush(colour)
+        painter.setBrush(self._colour)
         painter.drawPolygon(self._head)
-        if lod < LABEL_LOD or not self._text:
+        if not smooth:
+            painter.setRenderHint(QPainter.RenderHint.Antialiasing, True)
+        if self.canvas.lod < LABEL_LOD or not self._text:
             return
-        painter.setPen(QPen(colour if self.problems else QColor(38, 49, 59, 70), 1))
-        painter.setBrush(QColor(255, 255, 255, 235))
-        painter.drawRoundedRect(self._label_rect, 3, 3)
-        painter.setPen(colour)
-        painter.setFont(self.canvas.italic_font if self._rare else self.canvas.label_font)
-        painter.drawText(self._label_rect, Qt.AlignmentFlag.AlignCenter, self._text)
+        painter.setPen(self._frame)
+        painter.setBrush(_LABEL_BG)
+        r = self._label_rect
+        painter.drawRoundedRect(r, 3, 3)
+        painter.setPen(self._colour)
+        painter.setFont(self._static_font)
+        size = self._static.size()
+        painter.drawStaticText(QPointF(r.center().x() - size.width() / 2, r.center().y() - size.height() / 2),
+                               self._static)
+
+
+_LABEL_BG = QColor(255, 255, 255, 235)
+
+
+class OverviewEdges(QGraphicsItem):
+    """Every arrow as a plain line, drawn in one call, when the view is zoomed far out.
+
+    Below :data:`OVERVIEW_LOD` the arrow items are hidden (no per-arrow
+    painting), so a chain of thousands of transitions stays quick to redraw.
+    """
+
+    def __init__(self, canvas: "ChainCanvas"):
+        super().__init__()
+        self.canvas = canvas
+        self.setZValue(-1)
+        self.setAcceptedMouseButtons(Qt.MouseButton.NoButton)
+        self._lines: dict[tuple[str, str], tuple[int, QLineF]] = {}
+        self._groups: tuple[list, list, list] | None = None
+
+    def invalidate(self) -> None:
+        self._groups = None
+
+    def set_line(self, key: tuple[str, str], kind: int, line: QLineF | None) -> None:
+        """Record an arrow's line (kind 0 normal, 1 rare, 2 problem); None removes it."""
+        if line is None:
+            if self._lines.pop(key, None) is not None:
+                self._groups = None
+        else:
+            self._lines[key] = (kind, line)
+            self._groups = None
+
+    def boundingRect(self) -> QRectF:  # noqa: N802
+        return self.canvas.sceneRect()
+
+    def _build(self) -> tuple[list, list, list]:
+        groups: tuple[list, list, list] = ([], [], [])
+        for kind, line in self._lines.values():
+            groups[kind].append(line)
+        self._groups = groups
+        return groups
+
+    def paint(self, painter: QPainter, option: QStyleOptionGraphicsItem, widget: QWidget | None = None) -> None:
+        if self.canvas.lod >= OVERVIEW_LOD:
+            return
+        normal, rare, bad = self._groups or self._build()
+        # thin, opaque, aliased lines take the raster engine's fast path (tens of times
+        # faster than antialiased translucent ones for thousands of lines)
+        painter.setRenderHint(QPainter.RenderHint.Antialiasing, False)
+        pen = QPen(_OVERVIEW_INK, 1)
+        pen.setCosmetic(True)
+        painter.setPen(pen)
+        if normal:
+            painter.drawLines(normal)
+        if rare:
+            pen.setStyle(Qt.PenStyle.DashLine)
+            painter.setPen(pen)
+            painter.drawLines(rare)
+        if bad:
+            pen = QPen(pal.PROBLEM, 1)
+            pen.setCosmetic(True)
+            painter.setPen(pen)
+            painter.drawLines(bad)
+        painter.setRenderHint(QPainter.RenderHint.Antialiasing, True)
+
+
+_OVERVIEW_INK = QColor("#7D8791")
 
 
 # ---------------------------------------------------------------------------
@@ -640,6 +738,11 @@ class ChainCanvas(QGraphicsView):
         self.viewport().grabGesture(Qt.GestureType.PinchGesture)
         self.setSceneRect(QRectF(-2000, -2000, 4000, 4000))
 
+        self.lod = 1.0
+        self.interacting = False
+        self._bg_cache: tuple[float, QBrush] | None = None
+        self._overview = OverviewEdges(self)
+        self._scene.addItem(self._overview)
         self.states: dict[str, StateItem] = {}
         self.arrows: dict[tuple[str, str], ArrowItem] = {}
         self._incident: dict[str, set[tuple[str, str]]] = {}
@@ -715,6 +818,7 @@ class ChainCanvas(QGraphicsView):
         if item is None:
             return
         self._unplace(key)
+        self._overview_changed(item)
         self._scene.removeItem(item)
         for sid in key:
             inc = self._incident.get(sid)
@@ -824,7 +928,8 @@ class ChainCanvas(QGraphicsView):
         """Bring the scene from ``old`` to ``new``, touching only what changed."""
         if self._press is not None and self._press.get("mode") == "connect":
             self._end_connect(None)
-        dirty: set[str] = set()
+        moved: set[str] = set()        # states whose position changed
+        rewired: set[str] = set()      # states that gained or lost an arrow
         relayout: set[tuple[str, str]] = set()
         if old.states is not new.states:
             old_map = {s.id: s for s in old.states}
@@ -835,56 +940,62 @@ class ChainCanvas(QGraphicsView):
                 if sid not in new_map:
                     for key in list(self._incident.get(sid, ())):
                         self._remove_arrow_item(key)
+                        rewired.update(key)
                     self._scene.removeItem(self.states.pop(sid))
                     self._incident.pop(sid, None)
             for sid, s in new_map.items():
                 item = self.states.get(sid)
                 if item is None:
                     self._add_state_item(s)
-                    dirty.add(sid)
+                    moved.add(sid)
                     continue
                 o = old_map.get(sid)
                 if o is s:
                     continue
                 if o is None or (o.x, o.y) != (s.x, s.y):
                     item.setPos(s.x or 0.0, s.y or 0.0)
-                    dirty.add(sid)
+                    moved.add(sid)
                 item.set_name(s.display_name)
-        if old.transitions is not new.transitions or dirty:
+        changes = transition_changes(old, new)
+        if changes is None:  # a big change: compare every pair
             new_t: dict[tuple[str, str], Transition] = {}
             for t in new.transitions:
                 new_t.setdefault((t.source, t.target), t)
-            for key in [k for k in self.arrows if k not in new_t]:
-                self._remove_arrow_item(key)
+            changes = {k: None for k in self.arrows if k not in new_t}
+            changes.update(new_t)
+        for key, t in changes.items():
+            item = self.arrows.get(key)
+            if t is None or key[0] not in self.states or key[1] not in self.states:
+                if item is not None:
+                    self._remove_arrow_item(key)
+                    relayout.add((key[1], key[0]))
+                    rewired.update(key)
+            elif item is None:
+                self._add_arrow_item(t)
+                relayout.add(key)
                 relayout.add((key[1], key[0]))
-                dirty.update(key)
-            for key, t in new_t.items():
-                item = self.arrows.get(key)
-                if item is None:
-                    if key[0] in self.states and key[1] in self.states:
-                        self._add_arrow_item(t)
-                        relayout.add(key)
-                        relayout.add((key[1], key[0]))
-                        dirty.update(key)
-                elif item.transition is not t:
-                    item.set_transition(t)
-                    relayout.add(key)
-        # arrows touching a moved or re-connected state, and loops of its neighbours
-        around: set[str] = set(dirty)
-        for sid in dirty:
+                rewired.update(key)
+            elif item.transition is not t:
+                item.set_transition(t)
+                relayout.add(key)
+        # a moved state changes the direction its neighbours see it in; a rewired one only itself
+        arrange: set[str] = set(rewired)
+        for sid in moved:
+            arrange.add(sid)
             for key in self._incident.get(sid, ()):
                 relayout.add(key)
-                around.update(key)
-        for sid in around:
-            self._arrange_node(sid)
-            if (sid, sid) in self.arrows:
-                relayout.add((sid, sid))
+                arrange.update(key)
+        for sid in arrange:
+            if sid in self.states:
+                self._arrange_node(sid)
+                if (sid, sid) in self.arrows:
+                    relayout.add((sid, sid))
         for key in relayout:
             if key in self.arrows:
                 self._layout_arrow(key)
         self._place_labels(relayout)
         if self._report is not None and self._report.chain is not new:
-            self._apply_report_marks(only=dirty)
+            self._apply_report_marks(only=moved)
 
     # -- analysis marks ------------------------------------------------------------
     def apply_validation(self, report) -> None:
@@ -1048,6 +1159,7 @@ class ChainCanvas(QGraphicsView):
         cur = self.zoom
         if abs(z - cur) > 1e-9:
             self.scale(z / cur, z / cur)
+            self._sync_lod()
             self.zoomChanged.emit(self.zoom)
 
     def zoom_by(self, factor: float) -> None:
@@ -1067,10 +1179,16 @@ class ChainCanvas(QGraphicsView):
         else:
             rect = rect.adjusted(-30, -30, 30, 30)
             self._grow_scene_rect(rect)
-            self.fitInView(rect, Qt.AspectRatioMode.KeepAspectRatio)
-            if self.zoom > 1.6:
-                self.set_zoom(1.6)
-            self.centerOn(rect.center())
+            vp = self.viewport().rect()
+            reserve = self.legend.height() + 14 if self.legend.isVisible() else 0
+            avail_h = max(60, vp.height() - reserve)
+            z = min(vp.width() / rect.width(), avail_h / rect.height(), 1.6)
+            z = min(max(z, MIN_ZOOM), MAX_ZOOM)
+            self.resetTransform()
+            self.scale(z, z)
+            # centre the chain in the part of the view above the legend
+            self.centerOn(rect.center() + QPointF(0, reserve / 2 / z))
+        self._sync_lod()
         self.zoomChanged.emit(self.zoom)
 
     def _grow_scene_rect(self, rect: QRectF) -> None:
@@ -1141,6 +1259,7 @@ class ChainCanvas(QGraphicsView):
                     "mode": "move", "start": sp, "token": ("move", next(_drag_tokens)),
                     "origin": {sid: QPointF(self.states[sid].pos()) for sid in moving},
                 }
+                self.interacting = len(self.arrows) > 300  # quick drawing while a big chain moves
                 self.viewport().setCursor(Qt.CursorShape.ClosedHandCursor)
             event.accept()
             return
@@ -1194,6 +1313,9 @@ class ChainCanvas(QGraphicsView):
             self._end_connect(target)
         else:
             self._press = None
+        if self.interacting:
+            self.interacting = False
+            self.viewport().update()  # full quality again
         self.viewport().unsetCursor()
         event.accept()
 
@@ -1322,26 +1444,63 @@ class ChainCanvas(QGraphicsView):
         vp = self.viewport().geometry()
         self.legend.move(vp.left() + 10, vp.bottom() - self.legend.height() - 10)
 
-    def drawBackground(self, painter: QPainter, rect: QRectF) -> None:  # noqa: N802
-        painter.fillRect(rect, pal.CANVAS)
-        if self.zoom < 0.35:
+    @property
+    def smooth(self) -> bool:
+        """Antialiased arrows: close enough to see the difference, and not in the middle of a drag."""
+        return self.lod >= SMOOTH_LOD and not self.interacting
+
+    def _overview_changed(self, item: "ArrowItem | None" = None) -> None:
+        ov = getattr(self, "_overview", None)
+        if ov is None:
             return
-        step = 40.0
-        x0 = math.floor(rect.left() / step) * step
-        y0 = math.floor(rect.top() / step) * step
-        pts = []
-        y = y0
-        while y < rect.bottom():
-            x = x0
-            while x < rect.right():
-                pts.append(QPointF(x, y))
-                x += step
-            y += step
-        if len(pts) < 20000:
-            pen = QPen(pal.GRID_DOT, 1.6 / max(self.zoom, 0.2))
-            pen.setCapStyle(Qt.PenCapStyle.RoundCap)
-            painter.setPen(pen)
-            painter.drawPoints(pts)
+        if item is not None:
+            gone = self.arrows.get(item.key) is not item
+            kind = 2 if item.problems else 1 if item._rare else 0
+            ov.set_line(item.key, kind, None if gone else item.overview_line)
+        else:
+            ov.invalidate()
+        if self.lod < OVERVIEW_LOD:
+            if item is not None and item.overview_line is not None:
+                ov.update(QRectF(item.overview_line.p1(), item.overview_line.p2()).normalized().adjusted(-2, -2, 2, 2))
+            elif item is None:
+                ov.update()
+
+    def _sync_lod(self) -> None:
+        """Follow the zoom: arrows become one batch of lines far out, items again closer in."""
+        lod = self.transform().m11()
+        was_far = self.lod < OVERVIEW_LOD
+        self.lod = lod
+        far = lod < OVERVIEW_LOD
+        if far != was_far:
+            for item in self.arrows.values():
+                item.setVisible(not far)
+            self._overview.update()
+
+    def drawBackground(self, painter: QPainter, rect: QRectF) -> None:  # noqa: N802
+        if abs(self.transform().m11() - self.lod) > 1e-12:
+            self._sync_lod()
+        painter.fillRect(rect, pal.CANVAS)
+        z = self.lod
+        if z < 0.35:
+            return
+        # a dotted grid every 40 scene units, as a texture in device pixels (cached per zoom)
+        if self._bg_cache is None or abs(self._bg_cache[0] - z) > 1e-9:
+            step = max(4, round(40.0 * z))
+            pm = QPixmap(step, step)
+            pm.fill(pal.CANVAS)
+            p = QPainter(pm)
+            p.setRenderHint(QPainter.RenderHint.Antialiasing)
+            p.setPen(Qt.PenStyle.NoPen)
+            p.setBrush(pal.GRID_DOT)
+            p.drawEllipse(QPointF(0.0, 0.0), 1.1, 1.1)
+            p.drawEllipse(QPointF(step, 0.0), 1.1, 1.1)
+            p.drawEllipse(QPointF(0.0, step), 1.1, 1.1)
+            p.drawEllipse(QPointF(step, step), 1.1, 1.1)
+            p.end()
+            brush = QBrush(pm)
+            brush.setTransform(QTransform.fromScale(40.0 / step, 40.0 / step))
+            self._bg_cache = (z, brush)
+        painter.fillRect(rect, self._bg_cache[1])
 
     def drawForeground(self, painter: QPainter, rect: QRectF) -> None:  # noqa: N802
         if self.states:
@@ -1376,8 +1535,9 @@ class Legend(QWidget):
             ("rare", f"rare transition (p < {canvas.rare_below:g}, dashed)"),
         )
         fm = QFontMetricsF(canvas.label_font)
-        w = max(fm.horizontalAdvance(t) for _, t in self._rows) + 58
-        self.resize(int(w), self.ROW * len(self._rows) + 12)
+        self._col = max(fm.horizontalAdvance(t) for _, t in self._rows) + 52
+        rows = (len(self._rows) + 1) // 2
+        self.resize(int(2 * self._col + 8), self.ROW * rows + 10)
 
     def paintEvent(self, event) -> None:  # noqa: N802
         p = QPainter(self)
@@ -1388,8 +1548,17 @@ class Legend(QWidget):
         p.setFont(self.canvas.label_font)
         blue = pal.class_colour(0)
         green = pal.class_colour(1)
+        half = (len(self._rows) + 1) // 2
         for k, (kind, text) in enumerate(self._rows):
-            cy = 6 + self.ROW * k + self.ROW / 2
+            col, row = divmod(k, half)
+            p.save()
+            p.translate(col * self._col, 0)
+            self._paint_row(p, kind, text, 5 + self.ROW * row + self.ROW / 2, blue, green)
+            p.restore()
+        p.end()
+
+    def _paint_row(self, p: QPainter, kind: str, text: str, cy: float, blue: QColor, green: QColor) -> None:
+        if True:
             c = QPointF(20, cy)
             r = 7.0
             if kind in ("closed", "absorbing", "transient", "problem"):
@@ -1429,6 +1598,5 @@ class Legend(QWidget):
                 p.setPen(pen)
                 p.drawLine(QPointF(8, cy), QPointF(32, cy))
             p.setPen(pal.INK)
-            p.drawText(QRectF(42, cy - self.ROW / 2, self.width() - 46, self.ROW),
+            p.drawText(QRectF(42, cy - self.ROW / 2, self._col - 44, self.ROW),
                        Qt.AlignmentFlag.AlignVCenter | Qt.AlignmentFlag.AlignLeft, text)
-        p.end()

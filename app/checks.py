@@ -83,6 +83,6 @@ class ChecksPanel(QWidget):
 
 
 PANELS = [
-    PanelSpec("checks", "Checks", ChecksPanel, area=Qt.DockWidgetArea.RightDockWidgetArea,
-              shortcut="Ctrl+Shift+K"),
+    PanelSpec("checks", "Checks", ChecksPanel, area=Qt.DockWidgetArea.BottomDockWidgetArea,
+              beside="matrix", shortcut="Ctrl+Shift+K"),
 ]

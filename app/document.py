@@ -24,7 +24,7 @@ from core.model import REST, Chain, State, Transition, parse_probability
 
 from .layout import fill_missing_positions, layout_positions
 
-__all__ = ["Document", "ChainEdit", "probability_text", "MOVE_MERGE_ID"]
+__all__ = ["Document", "ChainEdit", "probability_text", "transition_changes", "MOVE_MERGE_ID"]
 
 #: ``QUndoCommand.id()`` of merging moves (a drag is one undo step).
 MOVE_MERGE_ID = 4101
@@ -318,6 +318,8 @@ class Document(QObject):
         self.selectionChanged.emit()
 
     def _prune_selection(self) -> None:
+        if not self._sel_states and not self._sel_transitions:
+            return
         ids = set(self._chain.ids)
         pairs = {(t.source, t.target) for t in self._chain.transitions}
         s = frozenset(x for x in self._sel_states if x in ids)
@@ -450,6 +452,31 @@ class Document(QObject):
 
     def set_meta(self, **changes: Any) -> None:
         self.push(self._chain.with_meta(**changes), "Change model details")
+
+
+def transition_changes(old: Chain, new: Chain) -> dict[tuple[str, str], Transition | None] | None:
+    """The transitions that differ between two chains, for incremental views.
+
+    Returns ``{(from, to): transition in new (first of that pair) or None if
+    gone}``, or ``None`` when so much changed that a view should rebuild.
+    Transitions are compared by identity: an edit builds a new tuple that
+    shares every untouched :class:`Transition` object.
+    """
+    if old.transitions is new.transitions:
+        return {}
+    old_ids = set(map(id, old.transitions))
+    new_ids = set(map(id, new.transitions))
+    keys = {(t.source, t.target) for t in old.transitions if id(t) not in new_ids}
+    keys.update((t.source, t.target) for t in new.transitions if id(t) not in old_ids)
+    if len(keys) > max(64, len(new.transitions) // 4):
+        return None
+    out: dict[tuple[str, str], Transition | None] = dict.fromkeys(keys)
+    if keys:
+        for t in new.transitions:
+            k = (t.source, t.target)
+            if k in keys and out[k] is None:
+                out[k] = t
+    return out
 
 
 _ID_RE = re.compile(r"\S")

@@ -19,7 +19,7 @@ from PySide6.QtWidgets import QAbstractItemView, QHeaderView, QMenu, QTableView,
 from core.model import Chain, Transition, parse_probability
 
 from . import palette as pal
-from .document import Document, probability_text
+from .document import Document, probability_text, transition_changes
 from .panels import PanelSpec, Workspace
 
 __all__ = ["MatrixModel", "MatrixView", "MatrixPanel", "parse_block", "PANELS"]
@@ -118,8 +118,23 @@ class MatrixModel(QAbstractTableModel):
             self.headerDataChanged.emit(Qt.Orientation.Horizontal, 0, len(ids) - 1)
             self.headerDataChanged.emit(Qt.Orientation.Vertical, 0, len(ids) - 1)
         if old.transitions is not new.transitions:
-            self._index_cells()
-            self._all_changed()
+            changes = transition_changes(old, new)
+            if changes is None:
+                self._index_cells()
+                self._all_changed()
+                return
+            rows = set()
+            for key, t in changes.items():
+                if t is None:
+                    self._cells.pop(key, None)
+                else:
+                    self._cells[key] = t
+                rows.add(key[0])
+            index = new.index
+            for sid in rows:
+                r = index.get(sid)
+                if r is not None:
+                    self.dataChanged.emit(self.index(r, 0), self.index(r, len(ids)))
 
     def apply_validation(self, report) -> None:
         self._report = report

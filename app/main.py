@@ -70,13 +70,11 @@ def run_gui(file: str | None = None, *, screenshot: str | None = None,
     if size:
         win.resize(*size)
     win.show()
-    if opened:
-        from PySide6.QtCore import QTimer
-
-        QTimer.singleShot(0, win.canvas.fit_to_view)
     from PySide6.QtCore import QTimer
 
-    QTimer.singleShot(0, win.offer_recovery)
+    if opened:
+        QTimer.singleShot(0, win.canvas, win.canvas.fit_to_view)
+    QTimer.singleShot(0, win, win.offer_recovery)
     app.aboutToQuit.connect(win.shutdown)
     return int(app.exec())
 

@@ -66,6 +66,8 @@ class PanelSpec:
         Shown the first time.
     tab_with : str, optional
         Key of a panel to share a tabbed dock area with.
+    beside : str, optional
+        Key of a panel to split the dock area with (side by side).
     shortcut : str, optional
         Key sequence that shows and focuses the panel.
     """
@@ -76,6 +78,7 @@ class PanelSpec:
     area: Qt.DockWidgetArea = Qt.DockWidgetArea.RightDockWidgetArea
     visible: bool = True
     tab_with: str | None = None
+    beside: str | None = None
     shortcut: str | None = None
 
 

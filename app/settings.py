@@ -40,6 +40,8 @@ KEYS: dict[str, Key] = {
         Key("recovery/settle_ms", 2000, int, "autosave this long after a burst of edits ends"),
         Key("analysis/delay_ms", 150, int, "debounce before re-analysing after an edit"),
         Key("canvas/rare_below", 1e-3, float, "transitions below this probability are drawn as rare"),
+        Key("simulation/on_edit", "stop", str, "a running simulation stops ('stop') or restarts ('restart') "
+            "when the chain is edited"),
     )
 }
 

@@ -269,6 +269,8 @@ class MainWindow(QMainWindow):
                              | QDockWidget.DockWidgetFeature.DockWidgetFloatable)
             if spec.tab_with and spec.tab_with in self.docks:
                 self.tabifyDockWidget(self.docks[spec.tab_with], dock)
+            elif spec.beside and spec.beside in self.docks:
+                self.splitDockWidget(self.docks[spec.beside], dock, Qt.Orientation.Horizontal)
             else:
                 self.addDockWidget(spec.area, dock)
             dock.setVisible(spec.visible)
@@ -279,9 +281,9 @@ class MainWindow(QMainWindow):
             self.docks[spec.key] = dock
             self.panels[spec.key] = widget
         if "matrix" in self.docks:
-            self.resizeDocks([self.docks["matrix"]], [250], Qt.Orientation.Vertical)
-        if "checks" in self.docks:
-            self.resizeDocks([self.docks["checks"]], [320], Qt.Orientation.Horizontal)
+            self.resizeDocks([self.docks["matrix"]], [240], Qt.Orientation.Vertical)
+        if "matrix" in self.docks and "checks" in self.docks:
+            self.resizeDocks([self.docks["matrix"], self.docks["checks"]], [700, 360], Qt.Orientation.Horizontal)
 
     # -- status -------------------------------------------------------------------
     def _autosave_failed(self, message: str) -> None:
@@ -640,7 +642,7 @@ class MainWindow(QMainWindow):
             event.ignore()
             return
         event.acceptProposedAction()
-        QTimer.singleShot(0, lambda: self.open_path(p))
+        QTimer.singleShot(0, self, lambda: self.open_path(p))
 
     # -- closing ----------------------------------------------------------------------------
     def closeEvent(self, event) -> None:  # noqa: N802

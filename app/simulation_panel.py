@@ -1,0 +1,1151 @@
+"""The replicate simulation panel: a live run of the plan, next to the exact answer.
+
+The panel runs the shared plan (:mod:`app.plan_form`) with the core engine
+(:class:`core.simulate.ReplicateSimulation`) in a worker thread
+(:class:`SimulationThread`) and shows, live:
+
+* grouped bars per state: the simulated share (of the replicates at step
+  ``t``, or of the time along each replicate), the exact value (``pi0 P^t``,
+  or the exact mean of the kept draws so far) with its ±2 standard deviation
+  noise band, and the long-run law from the start;
+* the total variation distance to the long-run law against the steps
+  (log-log): the simulated points over the exact curve ``d_start(t) =
+  TV(pi0 P^t, long run)`` (and the exact curve of the time average), with
+  the tolerance and the noise floor of ``R`` replicates;
+* a strip of a few sample paths (their last steps).
+
+The run convention is DEVELOPERS.md "Simulation": burn-in ``B`` then ``T``
+steps; the final-step view shows the ensemble, the time-average view the
+states kept at steps ``B, B + s, ...``.  Run, Pause, Single step and Reset
+drive the worker; its speed (steps per second or as fast as possible) can be
+changed while it runs.
+
+Threading: the worker constructs the simulation, computes the exact curves,
+then advances in chunks sized to about 15 ms of work (measured as it goes),
+sending each snapshot by a queued signal tagged with the run's id; the GUI
+keeps only the newest frame and draws it from a 25 Hz timer with ``setData``
+on plot items made once.  A frame whose run id is not the current one is
+dropped, so an edit of the chain (which stops the run, or restarts it, as set
+in the panel's menu) never mixes old and new results.  At the end the worker
+calls :func:`core.simulate.compare` and the panel shows its verdict.
+"""
+from __future__ import annotations
+
+import math
+import threading
+import time
+import traceback
+import weakref
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import QThread, Qt, QTimer, Signal
+from PySide6.QtGui import QAction, QActionGroup
+from PySide6.QtWidgets import (
+    QButtonGroup,
+    QFrame,
+    QHBoxLayout,
+    QLabel,
+    QMenu,
+    QProgressBar,
+    QSizePolicy,
+    QSplitter,
+    QStyle,
+    QToolButton,
+    QVBoxLayout,
+    QWidget,
+)
+
+from core.errors import LongrunError, OptionError
+
+from . import palette as pal
+from .analysis_service import analysis_key
+from .panels import PanelSpec, Workspace
+from .plan_form import (PlanFields, PlanValues, SIM_MAX_STEPS, fmt_p, preload_core, resolve_plan, shared_plan,
+                        verdict_badge)
+from .plot_export import (AVG_CURVE, CURVE, EXACT, GUIDE, LONG_RUN, SIM, ChartBox, finite_positive, log_ticks,
+                          nice_upper, state_ticks)
+
+__all__ = ["SimulationPanel", "SimulationThread", "RunRequest", "RunSetup", "LiveFrame", "live_simulation_threads",
+           "PANELS", "PATHS", "PATH_LENGTH"]
+
+#: Sample paths recorded and shown, and how many of their last steps.
+PATHS = 4
+PATH_LENGTH = 160
+#: Work per chunk the worker aims for, seconds (cancellation and frames come between chunks).
+CHUNK_SECONDS = 0.015
+#: Frames sent to the GUI at most this often (seconds), and R-hat computed at most this often.
+FRAME_INTERVAL = 1 / 40
+RHAT_INTERVAL = 0.5
+#: Screen refresh of the plots (ms).
+REFRESH_MS = 40
+#: Most simulated points kept on the TV chart (one per 1/200 of a decade of steps).
+TV_POINTS_PER_DECADE = 200
+
+_THREADS: "weakref.WeakSet[SimulationThread]" = weakref.WeakSet()
+
+
+def live_simulation_threads() -> list["SimulationThread"]:
+    """Simulation worker threads still running (tests check it is empty at teardown)."""
+    return [t for t in list(_THREADS) if t.isRunning()]
+
+
+# ---------------------------------------------------------------------------
+# messages between the worker and the panel
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class RunRequest:
+    """What to run: a snapshot of the chain and of the plan, taken on the GUI thread."""
+
+    run_id: int
+    chain: Any
+    values: PlanValues
+    paused: bool = False
+    first_steps: int = 0
+
+
+@dataclass(frozen=True, eq=False)
+class RunSetup:
+    """Sent once by the worker, before the first frame: the run's exact reference values.
+
+    Attributes
+    ----------
+    ids : tuple of str
+    start_law, long_run : (n,) ndarray
+    curve_steps, curve_tv : ndarray
+        ``d_start(t) = TV(pi0 P^t, long run)`` on a log grid of ``t`` in ``0..B+T``.
+    avg_steps, avg_tv : ndarray
+        The exact TV of the time average of a run of length ``T'`` (plotted at
+        step ``B + T'``).
+    noise_floor : float
+        The TV distance a perfect sample of ``R`` replicates shows on average
+        around the long-run law.
+    """
+
+    run_id: int
+    ids: tuple
+    labels: tuple
+    values: PlanValues
+    start_text: str
+    start_law: np.ndarray
+    long_run: np.ndarray
+    total_steps: int
+    kept_planned: int
+    curve_steps: np.ndarray
+    curve_tv: np.ndarray
+    avg_steps: np.ndarray
+    avg_tv: np.ndarray
+    noise_floor: float
+    seed: int
+    notes: tuple = ()
+
+
+@dataclass(frozen=True, eq=False)
+class LiveFrame:
+    """One snapshot of the run with the exact values at its step."""
+
+    run_id: int
+    snap: Any
+    exact_now: np.ndarray
+    exact_kept: np.ndarray | None
+    tv_ensemble: float
+    tv_average: float | None
+    rhat_max: float | None
+    rate: float
+
+
+class _ExactTracker:
+    """``pi0 P^t`` and the sum of the laws at the kept steps, advanced one step at a time.
+
+    Mat-vec products (dense, or CSR for large sparse chains) in the same order
+    as the simulation's steps, so the exact values are known at every frame.
+    """
+
+    def __init__(self, P: np.ndarray, pi0: np.ndarray, burn_in: int, stride: int, kept_planned: int):
+        n = P.shape[0]
+        nnz = int(np.count_nonzero(P))
+        if n > 200 and nnz < 0.2 * n * n:
+            from scipy.sparse import csr_matrix
+
+            self._PT = csr_matrix(P.T)
+            self._mul = lambda v: self._PT @ v
+        else:
+            self._P = np.ascontiguousarray(P)
+            self._mul = lambda v: v @ self._P
+        self.v = np.array(pi0, dtype=float)
+        self.t = 0
+        self.B, self.s, self.m = burn_in, stride, kept_planned
+        self.acc = np.zeros(n)
+        self.kept = 0
+        if burn_in == 0 and kept_planned >= 1:
+            self.acc += self.v
+            self.kept = 1
+
+    def advance(self, k: int) -> None:
+        mul = self._mul
+        B, s, m = self.B, self.s, self.m
+        v, t = self.v, self.t
+        for _ in range(k):
+            v = mul(v)
+            t += 1
+            if t >= B and self.kept < m and (t - B) % s == 0:
+                self.acc += v
+                self.kept += 1
+            if t & 1023 == 0:
+                v = np.clip(v, 0.0, None)
+                v /= v.sum()
+        self.v, self.t = v, t
+
+    def kept_mean(self) -> np.ndarray | None:
+        return self.acc / self.kept if self.kept else None
+
+
+# ---------------------------------------------------------------------------
+# the worker
+# ---------------------------------------------------------------------------
+class SimulationThread(QThread):
+    """Runs one :class:`RunRequest` with the core engine; thread-safe controls.
+
+    Signals (emitted from the worker thread, delivered queued)
+    -------
+    setup(int, RunSetup), frame(int, LiveFrame), finished_run(int, object), failed(int, str)
+        ``finished_run`` carries the :class:`core.simulate.SimulationReport`
+        (None when the run was cancelled).
+    """
+
+    setup = Signal(int, object)
+    frame = Signal(int, object)
+    finished_run = Signal(int, object)
+    failed = Signal(int, str)
+
+    def __init__(self, request: RunRequest):
+        super().__init__()
+        self.request = request
+        self.run_id = request.run_id
+        self._cond = threading.Condition()
+        self._paused = bool(request.paused)
+        self._wanted = int(request.first_steps)
+        self._cancel = False
+        self._speed = request.values.speed
+        self._pace_reset = True
+        self._sim = None
+        self.setObjectName(f"longrun-simulation-{request.run_id}")
+        _THREADS.add(self)
+
+    # -- controls (any thread) -----------------------------------------------------
+    def pause(self) -> None:
+        with self._cond:
+            self._paused = True
+            self._cond.notify_all()
+
+    def resume(self) -> None:
+        with self._cond:
+            self._paused = False
+            self._wanted = 0
+            self._pace_reset = True
+            self._cond.notify_all()
+
+    def step(self, k: int = 1) -> None:
+        """Pause (if running) and advance ``k`` more steps."""
+        with self._cond:
+            self._paused = True
+            self._wanted += max(1, int(k))
+            self._cond.notify_all()
+
+    def set_speed(self, speed: float | None) -> None:
+        with self._cond:
+            self._speed = speed
+            self._pace_reset = True
+            self._cond.notify_all()
+
+    def cancel(self) -> None:
+        with self._cond:
+            self._cancel = True
+            self._cond.notify_all()
+        sim = self._sim
+        if sim is not None:
+            sim.cancel()
+
+    @property
+    def paused(self) -> bool:
+        with self._cond:
+            return self._paused
+
+    # -- the run ------------------------------------------------------------------------
+    def run(self) -> None:  # noqa: D401 - QThread's entry point
+        rid = self.run_id
+        try:
+            self._run()
+        except LongrunError as exc:
+            self.failed.emit(rid, str(exc))
+        except MemoryError:
+            self.failed.emit(rid, "not enough memory for this run; use fewer replicates")
+        except Exception:  # a bug must not take the app down; it is shown in the panel
+            self.failed.emit(rid, "internal error:\n" + traceback.format_exc(limit=8))
+
+    def _run(self) -> None:
+        from core.evolution import PowerLadder, tv_curve, tv_distance
+        from core.passage import limit_law
+        from core.plan import Plan, bias_curve
+        from core.simulate import ReplicateSimulation, compare, curve_grid
+        from core.structure import classify
+
+        req = self.request
+        rid = req.run_id
+        chain = req.chain
+        v = req.values
+        if not chain.is_valid:
+            raise OptionError("the chain has problems (see Checks); fix them to simulate")
+        P = chain.matrix()
+        st = classify(P)
+        res = resolve_plan(chain, v, P, st)
+        if res.error:
+            raise OptionError(res.error)
+        sim = ReplicateSimulation(P, replicates=v.replicates, steps=v.steps, start=res.sim_start,
+                                  burn_in=v.burn_in, stride=v.stride, seed=v.seed, paths=PATHS,
+                                  path_length=PATH_LENGTH)
+        self._sim = sim
+        if self._cancelled():
+            return
+        pi0 = np.asarray(sim.start, dtype=float)
+        long_run = limit_law(P, pi0, st)
+        total = sim.total_steps
+        ladder = PowerLadder(P)
+        grid = curve_grid(total, 90)
+        d_start = tv_curve(ladder, pi0, grid.tolist(), target=long_run)
+        s = sim.stride
+        Ts = np.unique(np.round(np.geomspace(s, max(s, sim.steps), 70)).astype(np.int64))
+        Ts = Ts[(Ts >= s) & (Ts <= sim.steps)]
+        avg_plan = Plan(pi0, max(s, 1), burn_in=sim.burn_in, stride=s, replicates=sim.replicates,
+                        estimator="average")
+        avg_tv = bias_curve(P, avg_plan, Ts.tolist()) if Ts.size else np.zeros(0)
+        R = sim.replicates
+        floor = float(np.sqrt(np.clip(long_run * (1 - long_run), 0, None) / (2 * np.pi * R)).sum())
+        notes = []
+        reached = [k for k in st.closed if long_run[list(st.classes[k].states)].sum() > 0]
+        if len(reached) > 1:
+            notes.append(f"{len(reached)} closed classes can be reached: each replicate settles in one of them")
+        per = [st.classes[k].period for k in reached if (st.classes[k].period or 1) > 1]
+        if per:
+            notes.append(f"period {max(per)}: the law at step t keeps cycling; only the time average settles")
+        self.setup.emit(rid, RunSetup(
+            run_id=rid, ids=chain.ids, labels=tuple(x.display_name for x in chain.states), values=v,
+            start_text=res.start_text, start_law=pi0, long_run=long_run, total_steps=total,
+            kept_planned=sim.kept_planned, curve_steps=grid, curve_tv=d_start, avg_steps=sim.burn_in + Ts,
+            avg_tv=avg_tv, noise_floor=floor, seed=sim.seed, notes=tuple(notes)))
+        tracker = _ExactTracker(P, pi0, sim.burn_in, s, sim.kept_planned)
+
+        def send(snap, rate, rhat):
+            avg = snap.time_average
+            self.frame.emit(rid, LiveFrame(
+                run_id=rid, snap=snap, exact_now=tracker.v.copy(), exact_kept=tracker.kept_mean(),
+                tv_ensemble=tv_distance(snap.ensemble_share, long_run),
+                tv_average=None if avg is None else tv_distance(avg, long_run), rhat_max=rhat, rate=rate))
+
+        send(sim.snapshot(), 0.0, None)
+        per_step = None
+        last_emit = last_rhat = 0.0
+        rhat = None
+        ref_time, ref_step = time.monotonic(), 0
+        while not sim.done:
+            with self._cond:
+                while not self._cancel and self._paused and self._wanted == 0:
+                    self._cond.wait(0.5)
+                if self._cancel:
+                    break
+                stepping = self._paused and self._wanted > 0
+                speed = self._speed
+                if self._pace_reset:
+                    ref_time, ref_step = time.monotonic(), sim.t
+                    self._pace_reset = False
+            remaining = total - sim.t
+            budget = 1 if per_step is None else max(1, int(CHUNK_SECONDS / per_step))
+            if stepping:
+                with self._cond:
+                    k = min(self._wanted, remaining, budget)
+                    self._wanted -= k
+            elif speed is None:
+                k = min(budget, remaining)
+            else:
+                now = time.monotonic()
+                due = ref_step + int((now - ref_time) * speed) - sim.t
+                if due <= 0:
+                    wait = (sim.t + 1 - ref_step) / speed - (now - ref_time)
+                    with self._cond:
+                        if not self._cancel and not self._pace_reset and not self._paused:
+                            self._cond.wait(min(0.05, max(0.001, wait)))
+                    continue
+                k = min(due, budget, remaining)
+            t0 = time.perf_counter()
+            sim.advance(k)
+            tracker.advance(k)
+            dt = time.perf_counter() - t0
+            ps = dt / k
+            per_step = ps if per_step is None else 0.7 * per_step + 0.3 * ps
+            now = time.monotonic()
+            slow = speed is not None and speed <= 1 / FRAME_INTERVAL
+            if stepping or slow or sim.done or now - last_emit >= FRAME_INTERVAL:
+                if now - last_rhat >= RHAT_INTERVAL or sim.done:
+                    r = sim.running_rhat()
+                    rhat = None if r is None or not np.any(np.isfinite(r)) else float(np.nanmax(r))
+                    last_rhat = now
+                rate = R / per_step if per_step else 0.0
+                send(sim.snapshot(), rate, rhat)
+                last_emit = now
+        if self._cancelled() or not sim.done:
+            self.finished_run.emit(rid, None)
+            return
+        report = compare(sim.result(), P, ids=chain.ids, structure=st, tolerance=v.tolerance)
+        self.finished_run.emit(rid, report)
+
+    def _cancelled(self) -> bool:
+        with self._cond:
+            return self._cancel
+
+
+# ---------------------------------------------------------------------------
+# the panel
+# ---------------------------------------------------------------------------
+def _tool(text: str, icon: QStyle.StandardPixmap | None, tip: str, name: str) -> QToolButton:
+    b = QToolButton()
+    b.setText(text)
+    b.setObjectName(name)
+    b.setToolTip(tip)
+    b.setToolButtonStyle(Qt.ToolButtonStyle.ToolButtonTextBesideIcon)
+    if icon is not None:
+        from PySide6.QtWidgets import QApplication
+
+        b.setIcon(QApplication.style().standardIcon(icon))
+    return b
+
+
+def _fmt_rate(x: float) -> str:
+    if x <= 0 or not math.isfinite(x):
+        return "—"
+    m, e = f"{x:.2e}".split("e")
+    return f"{m}e{int(e)}" if x >= 1e5 else f"{x:,.0f}"
+
+
+def _fmt_eta(seconds: float) -> str:
+    if not math.isfinite(seconds):
+        return ""
+    if seconds < 1:
+        return "under a second left"
+    if seconds < 120:
+        return f"{seconds:.0f} s left"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min left"
+    if seconds < 3 * 86400:
+        return f"{seconds / 3600:.1f} h left"
+    return f"{seconds / 86400:.0f} days left"
+
+
+class SimulationPanel(QWidget):
+    """The live replicate simulation of the shared plan (a dock panel).
+
+    Attributes
+    ----------
+    state : str
+        ``"idle"``, ``"running"``, ``"paused"``, ``"finished"``, ``"stopped"``
+        or ``"failed"``.
+    run_id : int
+        Id of the current run (frames of other runs are dropped).
+    setup_info : RunSetup or None
+    frame : LiveFrame or None
+        The frame on screen.
+    report : core.simulate.SimulationReport or None
+        The finished run's comparison with the exact values.
+    render_count : int
+        Frames drawn so far (the benchmark measures the refresh rate with it).
+    """
+
+    stateChanged = Signal(str)
+    runFinished = Signal(object)
+
+    def __init__(self, workspace: Workspace):
+        super().__init__()
+        preload_core()
+        self.workspace = workspace
+        self.run_plan = shared_plan(workspace)
+        self.state = "idle"
+        self.run_id = 0
+        self.thread: SimulationThread | None = None
+        self._threads: list[SimulationThread] = []
+        self.setup_info: RunSetup | None = None
+        self.frame: LiveFrame | None = None
+        self._pending: LiveFrame | None = None
+        self.report = None
+        self.render_count = 0
+        self.dropped_frames = 0
+        self._restart_pending = False
+        self._n_bars = -1
+        self._bar_top = 0.0
+        self._tv_pts = {"final": ([], []), "average": ([], [])}
+        self._closed = False
+
+        # -- controls
+        self.fields = PlanFields(workspace, self.run_plan,
+                                 ("start", "replicates", "steps", "burn_in", "stride", "seed", "speed"), columns=3)
+        SP = QStyle.StandardPixmap
+        self.run_button = _tool("Run", SP.SP_MediaPlay, "Run the plan (or resume a paused run)", "simRun")
+        self.pause_button = _tool("Pause", SP.SP_MediaPause, "Pause the run", "simPause")
+        self.step_button = _tool("Step", SP.SP_MediaSkipForward, "Advance one step (pauses a running run)",
+                                 "simStep")
+        self.reset_button = _tool("Reset", SP.SP_MediaStop, "Stop the run and clear the charts", "simReset")
+        self.run_button.clicked.connect(self.run)
+        self.pause_button.clicked.connect(self.pause)
+        self.step_button.clicked.connect(lambda: self.single_step())
+        self.reset_button.clicked.connect(self.reset)
+        self.view_final = QToolButton()
+        self.view_final.setText("Final step across replicates")
+        self.view_final.setObjectName("simViewFinal")
+        self.view_avg = QToolButton()
+        self.view_avg.setText("Time average along chains")
+        self.view_avg.setObjectName("simViewAverage")
+        self.view_group = QButtonGroup(self)
+        for b, key in ((self.view_final, "final"), (self.view_avg, "average")):
+            b.setCheckable(True)
+            b.setToolTip("Estimator shown (and checked by the plan): " +
+                         ("where the replicates are at step t" if key == "final"
+                          else "the share of the kept steps spent in each state"))
+            self.view_group.addButton(b)
+        self.view_final.toggled.connect(lambda on: on and self.run_plan.update(estimator="final"))
+        self.view_avg.toggled.connect(lambda on: on and self.run_plan.update(estimator="average"))
+        self.options_button = QToolButton()
+        self.options_button.setText("On edit")
+        self.options_button.setObjectName("simOptions")
+        self.options_button.setToolTip("What a running simulation does when the chain is edited")
+        self.options_button.setPopupMode(QToolButton.ToolButtonPopupMode.InstantPopup)
+        menu = QMenu(self.options_button)
+        group = QActionGroup(self)
+        self.on_edit_actions: dict[str, QAction] = {}
+        for key, text in (("stop", "When the chain is edited, stop the run"),
+                          ("restart", "When the chain is edited, restart the run on the new chain")):
+            act = QAction(text, self, checkable=True)
+            act.setData(key)
+            group.addAction(act)
+            menu.addAction(act)
+            act.toggled.connect(lambda on, k=key: on and self.set_on_edit(k))
+            self.on_edit_actions[key] = act
+        self.on_edit_actions[self.on_edit()].setChecked(True)
+        self.options_button.setMenu(menu)
+
+        buttons = QHBoxLayout()
+        buttons.setSpacing(3)
+        for b in (self.run_button, self.pause_button, self.step_button, self.reset_button):
+            buttons.addWidget(b)
+        buttons.addSpacing(10)
+        seg = QHBoxLayout()
+        seg.setSpacing(0)
+        seg.addWidget(self.view_final)
+        seg.addWidget(self.view_avg)
+        buttons.addLayout(seg)
+        buttons.addStretch(1)
+        buttons.addWidget(self.options_button)
+
+        self.progress = QProgressBar()
+        self.progress.setObjectName("simProgress")
+        self.progress.setRange(0, 1000)
+        self.progress.setTextVisible(False)
+        self.progress.setFixedHeight(8)
+        self.status = QLabel("Ready: press Run to simulate the plan.")
+        self.status.setObjectName("simStatus")
+        self.status.setWordWrap(True)
+        self.status.setStyleSheet(f"color: {pal.INK.name()};")
+        self.prediction = QLabel("")
+        self.prediction.setObjectName("simPrediction")
+        self.prediction.setWordWrap(True)
+        self.prediction.setStyleSheet(f"color: {pal.INK_SOFT.name()};")
+        self.badge = QLabel("")
+        self.badge.setObjectName("simVerdict")
+        self.badge.setSizePolicy(QSizePolicy.Policy.Maximum, QSizePolicy.Policy.Fixed)
+        self.badge.setVisible(False)
+        self.verdict = QLabel("")
+        self.verdict.setObjectName("simVerdictText")
+        self.verdict.setWordWrap(True)
+        self.verdict.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        self.verdict.setVisible(False)
+
+        # -- charts (items are made once; frames only call setData / setOpts)
+        self.bars = ChartBox("Share of replicates in each state", name="simBars")
+        self.bars.set_labels("", "share")
+        bi = self.bars.item
+        w = 0.26
+        self.bar_sim = pg.BarGraphItem(x=[], height=[], width=w, brush=SIM, pen=pg.mkPen(SIM.darker(125)))
+        self.bar_exact = pg.BarGraphItem(x=[], height=[], width=w, brush=EXACT, pen=pg.mkPen(EXACT.darker(125)))
+        self.bar_long = pg.BarGraphItem(x=[], height=[], width=w, brush=pal.tint(LONG_RUN, 0.92),
+                                        pen=pg.mkPen(LONG_RUN, width=1.6))
+        self.noise_band = pg.ErrorBarItem(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0), beam=0.12,
+                                          pen=pg.mkPen(pal.INK, width=1.3))
+        for item in (self.bar_sim, self.bar_exact, self.bar_long, self.noise_band):
+            bi.addItem(item)
+        self._bar_w = w
+        self.tv = ChartBox("Distance to the long-run law", name="simTV")
+        self.tv.set_labels("step t (log scale)", "TV distance")
+        ti = self.tv.item
+        self.tv_curve = pg.PlotDataItem(pen=pg.mkPen(CURVE, width=2.2))
+        self.tv_avg_curve = pg.PlotDataItem(pen=pg.mkPen(AVG_CURVE, width=2.2, style=Qt.PenStyle.DashLine))
+        self.tv_points = pg.ScatterPlotItem(size=5, brush=pg.mkBrush(SIM), pen=pg.mkPen(SIM.darker(130), width=0.6))
+        self.tol_line = pg.InfiniteLine(angle=0, pen=pg.mkPen(GUIDE, width=1.3, style=Qt.PenStyle.DashLine))
+        self.floor_line = pg.InfiniteLine(angle=0, pen=pg.mkPen(GUIDE, width=1.3, style=Qt.PenStyle.DotLine))
+        self.now_line = pg.InfiniteLine(angle=90, pen=pg.mkPen(pal.tint(pal.INK, 0.55), width=1))
+        for item in (self.tv_curve, self.tv_avg_curve, self.tv_points):
+            ti.addItem(item)
+        for item in (self.tol_line, self.floor_line, self.now_line):
+            ti.addItem(item, ignoreBounds=True)
+            item.setVisible(False)
+        self.paths = ChartBox("A few sample paths (their last steps)", name="simPaths")
+        self.paths.set_labels("step", "")
+        self.paths.setMinimumHeight(120)
+        pcol = [pal.OKABE_ITO[k] for k in ("blue", "orange", "bluish_green", "reddish_purple")]
+        self.path_items = []
+        for k in range(PATHS):
+            item = pg.PlotDataItem(pen=pg.mkPen(pcol[k % len(pcol)], width=1.6), stepMode="right")
+            self.paths.item.addItem(item)
+            self.path_items.append(item)
+        self._set_legends()
+
+        split = QSplitter(Qt.Orientation.Vertical)
+        split.setObjectName("simSplit")
+        split.setChildrenCollapsible(False)
+        split.addWidget(self.bars)
+        split.addWidget(self.tv)
+        split.addWidget(self.paths)
+        split.setStretchFactor(0, 5)
+        split.setStretchFactor(1, 4)
+        split.setStretchFactor(2, 2)
+        self.splitter = split
+
+        verdict_row = QHBoxLayout()
+        verdict_row.addWidget(self.badge, 0, Qt.AlignmentFlag.AlignTop)
+        verdict_row.addWidget(self.verdict, 1)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(8, 6, 8, 6)
+        lay.setSpacing(5)
+        lay.addWidget(self.fields)
+        lay.addLayout(buttons)
+        lay.addWidget(self.progress)
+        lay.addWidget(self.status)
+        lay.addWidget(self.prediction)
+        line = QFrame()
+        line.setFrameShape(QFrame.Shape.HLine)
+        line.setStyleSheet("color: #D5DADF;")
+        lay.addWidget(line)
+        lay.addWidget(split, 1)
+        lay.addLayout(verdict_row)
+
+        self.timer = QTimer(self)
+        self.timer.setInterval(REFRESH_MS)
+        self.timer.timeout.connect(self._render)
+        self.run_plan.changed.connect(self._plan_changed)
+        self.run_plan.runRequested.connect(self._run_requested)
+        self.run_plan.checkChanged.connect(lambda _o: self._show_prediction())
+        workspace.document.chainChanged.connect(self._chain_edited)
+        workspace.analysis.structureReady.connect(self._structure_ready)
+        self._show_view(self.run_plan.values.estimator)
+        self._reset_charts()
+        self._update_buttons()
+
+    # -- settings -------------------------------------------------------------------
+    def on_edit(self) -> str:
+        v = self.workspace.settings.get("simulation/on_edit")
+        return v if v in ("stop", "restart") else "stop"
+
+    def set_on_edit(self, how: str) -> None:
+        if how not in ("stop", "restart"):
+            raise ValueError(how)
+        self.workspace.settings.set("simulation/on_edit", how)
+        act = self.on_edit_actions[how]
+        if not act.isChecked():
+            act.setChecked(True)
+
+    # -- commands ------------------------------------------------------------------------
+    def run(self) -> bool:
+        """Run the plan (resume when paused); False when it cannot start."""
+        if self.state == "paused" and self.thread is not None and self._same_plan():
+            self.thread.resume()
+            self.timer.start()
+            self._set_state("running")
+            return True
+        return self._start(paused=False)
+
+    def pause(self) -> None:
+        if self.state == "running" and self.thread is not None:
+            self.thread.pause()
+            self._set_state("paused")
+
+    def single_step(self, k: int = 1) -> bool:
+        """Advance ``k`` steps (starting a paused run when there is none)."""
+        if self.state in ("running", "paused") and self.thread is not None and self._same_plan():
+            self.thread.step(k)
+            self.timer.start()
+            self._set_state("paused")
+            return True
+        return self._start(paused=True, first_steps=k)
+
+    def reset(self) -> None:
+        """Stop the run and clear the charts."""
+        self._restart_pending = False
+        self._stop_thread()
+        self.report = None
+        self._reset_charts()
+        self._set_state("idle")
+        self.status.setText("Ready: press Run to simulate the plan.")
+
+    def _same_plan(self) -> bool:
+        t = self.thread
+        return t is not None and t.request.values.run_key() == self.run_plan.values.run_key() \
+            and t.request.chain is self.workspace.document.chain
+
+    def _start(self, *, paused: bool, first_steps: int = 0) -> bool:
+        self._restart_pending = False
+        chain = self.workspace.document.chain
+        self._stop_thread()
+        self.report = None
+        if chain.n == 0:
+            self.status.setText("Add states to the chain to simulate it.")
+            return False
+        if not chain.is_valid:
+            k = len(chain.problems)
+            self.status.setText(f"The chain has {k} problem{'s' if k != 1 else ''} (see Checks): fix "
+                                f"{'them' if k != 1 else 'it'} to simulate.")
+            self._set_state("failed")
+            return False
+        self.run_id += 1
+        req = RunRequest(self.run_id, chain, self.run_plan.values, paused=paused, first_steps=first_steps)
+        th = SimulationThread(req)
+        th.setup.connect(self._on_setup)
+        th.frame.connect(self._on_frame)
+        th.finished_run.connect(self._on_finished)
+        th.failed.connect(self._on_failed)
+        th.finished.connect(lambda t=th: self._thread_done(t))
+        self.thread = th
+        self._threads.append(th)
+        self._reset_charts()
+        self._set_state("paused" if paused else "running")
+        self.status.setText("Preparing the run…")
+        th.start()
+        self.timer.start()
+        return True
+
+    def _stop_thread(self) -> None:
+        th = self.thread
+        self.thread = None
+        self.run_id += 1  # everything the old run still sends is dropped
+        self._pending = None
+        if th is not None:
+            th.cancel()
+
+    def _thread_done(self, th: SimulationThread) -> None:
+        th.wait()
+        if th in self._threads:
+            self._threads.remove(th)
+
+    def _run_requested(self, _kind: str) -> None:
+        dock = self.parentWidget()
+        from PySide6.QtWidgets import QDockWidget
+
+        while dock is not None and not isinstance(dock, QDockWidget):
+            dock = dock.parentWidget()
+        if dock is not None:
+            dock.show()
+            dock.raise_()
+        self._start(paused=False)
+
+    # -- the chain changes under a run ---------------------------------------------------------
+    def _chain_edited(self, old, new) -> None:
+        if analysis_key(old) == analysis_key(new):
+            return  # moved or relabelled: the run is unaffected
+        was_active = self.state in ("running", "paused")
+        had_results = self.frame is not None or self.report is not None
+        self._stop_thread()
+        self.report = None
+        self._reset_charts()
+        if was_active and self.on_edit() == "restart":
+            self._restart_pending = True
+            self._set_state("paused" if self.state == "paused" else "running")
+            self.status.setText("The chain was edited: the run restarts on the new chain once it is checked…")
+            return
+        if was_active:
+            self._set_state("stopped")
+            self.status.setText("Stopped: the chain was edited. Press Run to simulate the new chain.")
+        elif had_results:
+            self._set_state("idle")
+            self.status.setText("The chain was edited: the previous run's results were cleared.")
+
+    def _structure_ready(self, report) -> None:
+        if not self._restart_pending or report.chain is not self.workspace.document.chain:
+            return
+        self._restart_pending = False
+        if report.structure is None:
+            self._set_state("stopped")
+            self.status.setText("Stopped: the edited chain has problems (see Checks); fix them and press Run.")
+            return
+        self._start(paused=False)
+
+    def _plan_changed(self, values: PlanValues) -> None:
+        self._show_view(values.estimator)
+        if self.thread is not None:
+            self.thread.set_speed(values.speed)
+        if self.frame is not None:
+            if self._pending is None:
+                self._pending = self.frame
+            self._render()
+        if self.state in ("running", "paused") and not self._same_plan():
+            self.status.setText(self.status.text().split(" · plan changed")[0]
+                                + " · plan changed: press Run to apply it")
+        self._show_prediction()
+
+    def _show_view(self, estimator: str) -> None:
+        for b, key in ((self.view_final, "final"), (self.view_avg, "average")):
+            b.blockSignals(True)
+            b.setChecked(estimator == key)
+            b.blockSignals(False)
+        self._set_legends()
+
+    # -- worker signals -------------------------------------------------------------------------
+    def _on_setup(self, rid: int, setup: RunSetup) -> None:
+        if rid != self.run_id:
+            self.dropped_frames += 1
+            return
+        self.setup_info = setup
+        self._tv_pts = {"final": ([], []), "average": ([], [])}
+        self._prepare_charts(setup)
+        self._show_prediction()
+
+    def _on_frame(self, rid: int, frame: LiveFrame) -> None:
+        if rid != self.run_id or self.setup_info is None:
+            self.dropped_frames += 1
+            return
+        snap = frame.snap
+        self._add_tv_point("final", snap.step, frame.tv_ensemble)
+        if frame.tv_average is not None and snap.kept:
+            s = self.setup_info.values.stride
+            self._add_tv_point("average", self.setup_info.values.burn_in + snap.kept * s, frame.tv_average)
+        self._pending = frame
+
+    def _on_finished(self, rid: int, report) -> None:
+        if rid != self.run_id:
+            self.dropped_frames += 1
+            return
+        if report is None:
+            return
+        self.report = report
+        if self._pending is None:
+            self._pending = self.frame
+        self._render()
+        self._show_report(report)
+        self._set_state("finished")
+        self.runFinished.emit(report)
+
+    def _on_failed(self, rid: int, message: str) -> None:
+        if rid != self.run_id:
+            return
+        self._set_state("failed")
+        first = message.split("\n")[0]
+        self.status.setText(f"Could not run: {first}" if not message.startswith("internal") else message)
+        self.status.setToolTip(message)
+
+    # -- drawing ------------------------------------------------------------------------------------
+    def _set_state(self, state: str) -> None:
+        self.state = state
+        if state not in ("running", "paused"):
+            self.timer.stop()
+        self._update_buttons()
+        self.stateChanged.emit(state)
+
+    def _update_buttons(self) -> None:
+        s = self.state
+        self.run_button.setEnabled(s != "running")
+        self.run_button.setText("Resume" if s == "paused" else ("Run again" if s == "finished" else "Run"))
+        self.pause_button.setEnabled(s == "running")
+        self.step_button.setEnabled(True)
+        self.reset_button.setEnabled(s in ("running", "paused", "finished", "stopped", "failed"))
+
+    def _set_legends(self) -> None:
+        avg = self.run_plan.values.estimator == "average"
+        bars = [("fill", SIM, "simulated"),
+                ("fill", EXACT, "exact mean of the kept steps" if avg else "exact law at step t")]
+        if not avg:
+            bars.append(("band", pal.INK, "±2 sd noise"))
+        bars.append(("outline", LONG_RUN, "long-run law"))
+        self.bars.set_legend(bars)
+        tv = [("dots", SIM, "simulated"), ("line", CURVE, "exact d_start(t)")]
+        if avg:
+            tv.append(("dash", AVG_CURVE, "exact, time average"))
+        else:
+            tv.append(("dotline", GUIDE, "noise floor"))
+        tv.append(("dash", GUIDE, "tolerance"))
+        self.tv.set_legend(tv)
+
+    def _reset_charts(self) -> None:
+        """Empty charts for the current chain (no frame from any run)."""
+        self.frame = None
+        self._pending = None
+        self.setup_info = None
+        self._tv_pts = {"final": ([], []), "average": ([], [])}
+        chain = self.workspace.document.chain
+        self._layout_bars(chain.ids)
+        z = np.zeros(chain.n)
+        self.bar_sim.setOpts(height=z)
+        self.bar_exact.setOpts(height=z)
+        self.bar_long.setOpts(height=z)
+        self.noise_band.setData(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0))
+        self._bar_top = 0.0
+        self.bars.item.setYRange(0, 1, padding=0)
+        self.bars.set_title("Share of replicates in each state")
+        self.tv_curve.setData([], [])
+        self.tv_avg_curve.setData([], [])
+        self.tv_points.setData([], [])
+        for line in (self.tol_line, self.floor_line, self.now_line):
+            line.setVisible(False)
+        self.tv.item.setXRange(0, 3, padding=0)
+        self.tv.item.setYRange(-3, 0, padding=0.02)
+        self.tv.item.getAxis("bottom").setTicks(log_ticks(0, 3))
+        self.tv.item.getAxis("left").setTicks(log_ticks(-3, 0))
+        for item in self.path_items:
+            item.setData([], [])
+        self._layout_paths(chain.ids)
+        self.progress.setValue(0)
+        self.badge.setVisible(False)
+        self.verdict.setVisible(False)
+        self.prediction.setText("")
+
+    def _layout_bars(self, ids) -> None:
+        n = len(ids)
+        x = np.arange(n, dtype=float)
+        w = self._bar_w
+        self.bar_sim.setOpts(x=x - w, height=np.zeros(n))
+        self.bar_exact.setOpts(x=x, height=np.zeros(n))
+        self.bar_long.setOpts(x=x + w, height=np.zeros(n))
+        ax = self.bars.item.getAxis("bottom")
+        ax.setTicks([state_ticks(ids), []])
+        self.bars.item.setXRange(-0.6, max(n - 0.4, 0.6), padding=0)
+        self._n_bars = n
+
+    def _layout_paths(self, ids) -> None:
+        n = len(ids)
+        ax = self.paths.item.getAxis("left")
+        ax.setTicks([state_ticks(ids, max_labels=6, width=8), []])
+        self.paths.item.setYRange(-0.6, max(n - 0.4, 0.6), padding=0)
+
+    def _prepare_charts(self, setup: RunSetup) -> None:
+        ids = setup.ids
+        if len(ids) != self._n_bars:
+            self._layout_bars(ids)
+        self._layout_paths(ids)
+        self.bar_long.setOpts(height=setup.long_run)
+        x, y = finite_positive(setup.curve_steps, setup.curve_tv)
+        self.tv_curve.setData(np.log10(x), np.log10(y))
+        ax_, ay = finite_positive(setup.avg_steps, setup.avg_tv)
+        self.tv_avg_curve.setData(np.log10(ax_), np.log10(ay))
+        tol = setup.values.tolerance
+        self.tol_line.setPos(math.log10(tol))
+        self.tol_line.setVisible(True)
+        if setup.noise_floor > 0:
+            self.floor_line.setPos(math.log10(setup.noise_floor))
+        x1 = math.log10(max(10, setup.total_steps))
+        lows = [math.log10(tol)]
+        if setup.noise_floor > 0:
+            lows.append(math.log10(setup.noise_floor))
+        if y.size:
+            lows.append(float(np.log10(y).min()))
+        if ay.size:
+            lows.append(float(np.log10(ay).min()))
+        y0 = max(-6.0, min(lows) - 0.4)
+        ti = self.tv.item
+        ti.setXRange(0, x1, padding=0.02)
+        ti.setYRange(y0, 0.05, padding=0)
+        ti.getAxis("bottom").setTicks(log_ticks(0, x1))
+        ti.getAxis("left").setTicks(log_ticks(y0, 0))
+        self._apply_view_items()
+
+    def _apply_view_items(self) -> None:
+        avg = self.run_plan.values.estimator == "average"
+        self.tv_avg_curve.setVisible(avg)
+        self.floor_line.setVisible(not avg and self.setup_info is not None and self.setup_info.noise_floor > 0)
+        self.noise_band.setVisible(not avg)
+        xs, ys = self._tv_pts["average" if avg else "final"]
+        if xs:
+            self.tv_points.setData(np.log10(np.asarray(xs, float)), np.log10(np.asarray(ys, float)))
+        else:
+            self.tv_points.setData([], [])
+
+    def _add_tv_point(self, view: str, x: float, tv: float) -> None:
+        if x <= 0 or not (tv > 0) or not math.isfinite(tv):
+            return
+        xs, ys = self._tv_pts[view]
+        lx = math.log10(x)
+        if xs and lx - math.log10(xs[-1]) < 1.0 / TV_POINTS_PER_DECADE:
+            xs[-1], ys[-1] = x, tv  # same place on the chart: keep the newest
+            return
+        xs.append(x)
+        ys.append(tv)
+
+    def _render(self) -> None:
+        frame = self._pending
+        if frame is None:
+            return
+        self._pending = None
+        setup = self.setup_info
+        if setup is None or frame.run_id != self.run_id:
+            return
+        self.frame = frame
+        self.render_count += 1
+        snap = frame.snap
+        v = self.run_plan.values
+        avg = v.estimator == "average"
+        R = snap.replicates
+        rep = self.report if self.report is not None and self.report.step == snap.step else None
+        if avg:
+            sim = snap.time_average if snap.time_average is not None else np.zeros(len(setup.ids))
+            exact = frame.exact_kept
+            if rep is not None and rep.window_mean is not None:
+                exact = rep.window_mean
+            if exact is None:
+                exact = np.zeros(len(setup.ids))
+        else:
+            sim = snap.ensemble / R
+            exact = rep.exact_at_step if rep is not None else frame.exact_now
+        self.bar_sim.setOpts(height=np.asarray(sim, float))
+        self.bar_exact.setOpts(height=np.asarray(exact, float))
+        top = float(max(np.max(sim) if len(sim) else 0, np.max(exact) if len(exact) else 0,
+                        np.max(setup.long_run) if len(setup.long_run) else 0))
+        if not avg:
+            sd = np.sqrt(np.clip(exact * (1 - exact), 0, None) / R)
+            self.noise_band.setData(x=np.arange(len(exact), dtype=float), y=np.asarray(exact, float),
+                                    height=4 * sd)
+            top = max(top, float(np.max(exact + 2 * sd)) if len(exact) else 0)
+        want = nice_upper(top * 1.04)
+        if want != self._bar_top:
+            self._bar_top = want
+            self.bars.item.setYRange(0, want, padding=0)
+        if avg:
+            kept = snap.kept
+            if kept:
+                last = v.burn_in + (kept - 1) * v.stride
+                self.bars.set_title(f"Share of time in each state: {kept:,} kept steps "
+                                    f"({v.burn_in:,} … {last:,}) of {R:,} replicates")
+            else:
+                self.bars.set_title(f"Share of time in each state: burn-in, nothing kept yet (step {snap.step:,} "
+                                    f"of {v.burn_in:,})")
+        else:
+            self.bars.set_title(f"Share of {R:,} replicates in each state at step t = {snap.step:,}")
+        self._apply_view_items()
+        if snap.step >= 1:
+            self.now_line.setPos(math.log10(snap.step))
+            self.now_line.setVisible(True)
+        # sample paths
+        paths = snap.paths
+        if paths.size:
+            m = paths.shape[1]
+            xs = np.arange(snap.path_start, snap.path_start + m, dtype=float)
+            p = paths.shape[0]
+            for k, item in enumerate(self.path_items):
+                if k < p:
+                    item.setData(xs, paths[k].astype(float) + (k - (p - 1) / 2) * 0.1)
+                else:
+                    item.setData([], [])
+            self.paths.item.setXRange(xs[0], max(xs[-1], xs[0] + 1), padding=0.01)
+        # progress
+        total = snap.total_steps
+        self.progress.setValue(int(1000 * snap.step / total) if total else 1000)
+        parts = [f"step {snap.step:,} of {total:,}"
+                 + (f" (burn-in {v.burn_in:,} + {snap.steps:,})" if snap.burn_in else "")]
+        if frame.rate > 0:
+            parts.append(f"{_fmt_rate(frame.rate)} replicate-steps/s")
+            if self.state == "running" and snap.step < total:
+                if v.speed is None:
+                    eta = (total - snap.step) * R / frame.rate
+                else:
+                    eta = (total - snap.step) / v.speed
+                parts.append(_fmt_eta(eta))
+        if frame.rhat_max is not None:
+            parts.append(f"R-hat up to {frame.rhat_max:.3f}")
+        shown_tv = frame.tv_average if avg else frame.tv_ensemble
+        if shown_tv is not None:
+            parts.append(f"TV to long run {shown_tv:.3g}")
+        if self.state == "paused":
+            parts.append("paused")
+        self.status.setText(" · ".join(parts))
+
+    def _show_prediction(self) -> None:
+        setup = self.setup_info
+        out = self.run_plan.check
+        if setup is None:
+            self.prediction.setText("")
+            return
+        if out is None or out.check is None or out.chain is not self.workspace.document.chain \
+                or out.values.check_key() != replace_estimator(setup.values, self.run_plan.values.estimator):
+            notes = "; ".join(setup.notes)
+            self.prediction.setText(f"From {setup.start_text}, seed {setup.seed}." + (f" Note: {notes}." if notes
+                                                                                   else ""))
+            return
+        c = out.check
+        word = "sound" if c.sound else "misleading"
+        self.prediction.setText(
+            f"Predicted by the exact plan check: this estimate converges to a law at TV {c.tv:.3g} from the "
+            f"long-run law — {word} (tolerance {c.plan.tolerance:g}). From {setup.start_text}, seed {setup.seed}.")
+
+    def _show_report(self, report) -> None:
+        from core.evolution import tv_distance
+
+        kind = {"consistent": "good", "biased": "warn", "uncertain": "warn", "incomplete": "warn",
+                "misleading": "bad", "mismatch": "bad"}.get(report.status, "warn")
+        verdict_badge(self.badge, kind, report.status.upper())
+        self.badge.setVisible(True)
+        avg = self.run_plan.values.estimator == "average"
+        text = report.verdict
+        head, _, rest = text.partition(": ")
+        lines = [rest or text]
+        ens_lr = tv_distance(report.ensemble_share, report.long_run)
+        if avg and report.tv_time_average is not None:
+            lines.append(f"Measured: time average at TV {report.tv_time_average:.3g} from the long-run law"
+                         + (f" (exactly expected: {report.tv_window:.3g})" if report.tv_window is not None else "")
+                         + ".")
+        else:
+            lines.append(f"Measured: the replicates at step {report.step:,} are at TV {ens_lr:.3g} from the "
+                         f"long-run law (exact law at that step: "
+                         f"{tv_distance(report.exact_at_step, report.long_run):.3g}; noise of "
+                         f"{report.result.replicates:,} replicates ~{report.tv_ensemble_noise:.2g}).")
+        self.verdict.setText(" ".join(lines))
+        self.verdict.setToolTip("\n".join(report.findings))
+        self.verdict.setVisible(True)
+        self.status.setText(self.status.text().replace(" · paused", "") + " · done")
+
+    # -- teardown ------------------------------------------------------------------------------------
+    def shutdown(self) -> None:
+        """Cancel every run and join the worker threads."""
+        if self._closed:
+            return
+        self._closed = True
+        self.timer.stop()
+        self._stop_thread()
+        for th in list(self._threads):
+            th.cancel()
+        for th in list(self._threads):
+            th.wait()
+        self._threads.clear()
+
+    def wait_idle(self, timeout_s: float = 30.0) -> bool:
+        """Join threads that were already cancelled (tests; returns False on timeout)."""
+        ok = True
+        for th in list(self._threads):
+            if th is not self.thread:
+                ok = th.wait(int(timeout_s * 1000)) and ok
+        return ok
+
+
+def replace_estimator(values: PlanValues, estimator: str) -> tuple:
+    """The check key of ``values`` seen with another estimator (the view can change under a run)."""
+    from dataclasses import replace
+
+    return replace(values, estimator=estimator).check_key()
+
+
+PANELS = [
+    PanelSpec("simulation", "Simulation", SimulationPanel, area=Qt.DockWidgetArea.RightDockWidgetArea,
+              tab_with="longrun", shortcut="Ctrl+Shift+M"),
+]
