@@ -63,6 +63,9 @@ def positive_int(text: str) -> int:
 
 def nonnegative_int(text: str) -> int:
     """argparse type: a whole number >= 0 (accepts 1e6 and 1_000_000)."""
+    digits = text.strip().replace("_", "")
+    if digits.isdigit() and len(digits) <= 18:
+        return int(digits)  # exact (a float would round beyond 2**53)
     try:
         f = float(text.replace("_", ""))
     except ValueError:
@@ -70,6 +73,21 @@ def nonnegative_int(text: str) -> int:
     if not f.is_integer() or f < 0 or f > 1e18:
         raise argparse.ArgumentTypeError(f"{text!r} is not a whole number >= 0")
     return int(f)
+
+
+def seed_int(text: str) -> int:
+    """argparse type: a seed, a whole number from 0 to 2**128 - 1, read exactly.
+
+    Fresh seeds are 128-bit numbers (numpy's ``SeedSequence`` entropy); the one a
+    run reports must be accepted back as it was printed.
+    """
+    digits = text.strip().replace("_", "")
+    if digits.isdigit():
+        v = int(digits)
+        if v < 2**128:
+            return v
+        raise argparse.ArgumentTypeError(f"{text!r} is larger than the largest seed, 2**128 - 1")
+    return nonnegative_int(text)
 
 
 def probability(text: str) -> float:

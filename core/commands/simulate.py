@@ -16,8 +16,8 @@ from __future__ import annotations
 import sys
 import time
 
-from ._common import (add_file_argument, load_valid, nonnegative_int, positive_int, probability, state_index,
-                      stderr_is_tty, write_stdout)
+from ._common import (add_file_argument, load_valid, nonnegative_int, positive_int, probability, seed_int,
+                      state_index, stderr_is_tty, write_stdout)
 
 HELP = "simulate many replicates of the chain and compare them with the exact long-run values"
 DESCRIPTION = (
@@ -50,7 +50,7 @@ def add_arguments(parser):
     parser.add_argument("--start", metavar="ID", default=None,
                         help="start state (default: the first state in the file); 'uniform' starts "
                         "from every state with equal probability")
-    parser.add_argument("--seed", type=nonnegative_int, default=None, metavar="N",
+    parser.add_argument("--seed", type=seed_int, default=None, metavar="N",
                         help="seed for a reproducible run (default: fresh; the seed used is printed)")
     parser.add_argument("--tracked", type=positive_int, default=None, metavar="K",
                         help="replicates whose own counts feed R-hat, ESS and the standard errors "
