@@ -64,6 +64,7 @@ OVERVIEW_LOD = 0.3    # below this zoom arrows are drawn as one batch of plain l
 MAX_ZOOM = 4.0
 MIN_ZOOM = 0.05
 _drag_tokens = itertools.count(1)
+_CURVE_OFFSET = math.atan(0.5)  # where a curved arrow meets its state, off the centre line
 
 
 # ---------------------------------------------------------------------------
@@ -841,7 +842,10 @@ class ChainCanvas(QGraphicsView):
                 continue
             d = self.states[other].pos() - c
             if math.hypot(d.x(), d.y()) > 1e-6:
-                dirs.append(math.atan2(d.y(), d.x()))
+                ang = math.atan2(d.y(), d.x())
+                if (b, a) in self.arrows:  # a curved pair leaves and enters off the straight line
+                    ang += _CURVE_OFFSET if a == sid else -_CURVE_OFFSET
+                dirs.append(ang)
         loop = (sid, sid) in self.arrows
         angle = -math.pi / 2
         if dirs:

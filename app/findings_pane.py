@@ -143,7 +143,7 @@ class FindingsPane(QWidget):
         self.detail.setOpenLinks(False)
         self.detail.setPlaceholderText("Select a finding to read its explanation and remedy; its states and "
                                        "transitions are highlighted on the canvas and in the matrix.")
-        split = QSplitter(Qt.Orientation.Horizontal)
+        split = QSplitter(Qt.Orientation.Vertical)
         split.addWidget(self.tree)
         split.addWidget(self.detail)
         split.setStretchFactor(0, 3)
@@ -296,6 +296,6 @@ class FindingsPane(QWidget):
 
 
 PANELS = [
-    PanelSpec("findings", "Findings", FindingsPane, area=Qt.DockWidgetArea.BottomDockWidgetArea,
-              tab_with="checks", shortcut="Ctrl+Shift+F"),
+    PanelSpec("findings", "Findings", FindingsPane, area=Qt.DockWidgetArea.RightDockWidgetArea,
+              tab_with="plan", shortcut="Ctrl+Shift+F"),
 ]

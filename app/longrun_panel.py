@@ -203,6 +203,7 @@ class LongRunPanel(QWidget):
         self.law_chart = ChartBox("Stationary law of each closed class", name="longrunLawChart")
         self.law_chart.set_labels("", "long-run share")
         self.law_chart.setMinimumHeight(200)
+        self.law_chart.setMaximumHeight(250)
         self.law_bars = pg.BarGraphItem(x=[], height=[], width=0.7, brush=pal.tint(pal.class_colour(0), 0.35),
                                        pen=pg.mkPen(pal.class_colour(0)))
         self.law_err = pg.ErrorBarItem(x=np.zeros(0), y=np.zeros(0), top=np.zeros(0), bottom=np.zeros(0),

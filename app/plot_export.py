@@ -97,16 +97,36 @@ def nice_upper(x: float) -> float:
 
 
 def log_ticks(lo: float, hi: float) -> list[list[tuple[float, str]]]:
-    """Major ticks at the powers of ten between ``lo`` and ``hi`` (log10 view coordinates)."""
+    """Ticks for a log10 axis showing ``lo .. hi`` (view coordinates are log10 of the values).
+
+    Powers of ten are labelled; over a short span (under about two and a half
+    decades) 2 and 5 times the powers are labelled too, and 2..9 are minor ticks.
+    """
     a, b = math.floor(lo), math.ceil(hi)
-    if b - a > 8:
-        step = math.ceil((b - a) / 8)
-    else:
-        step = 1
-    major = []
-    for k in range(a, b + 1, step):
-        major.append((float(k), _pow_label(k)))
-    return [major, []]
+    span = hi - lo
+    step = math.ceil((b - a) / 8) if b - a > 8 else 1
+    major = [(float(k), _pow_label(k)) for k in range(a, b + 1, step)]
+    minor: list[tuple[float, str]] = []
+    if step == 1:
+        for k in range(a, b + 1):
+            for m in range(2, 10):
+                x = k + math.log10(m)
+                if lo - 1e-9 <= x <= hi + 1e-9:
+                    if span < 2.5 and m in (2, 5):
+                        major.append((x, _value_label(m * 10.0 ** k)))
+                    else:
+                        minor.append((x, ""))
+    major.sort()
+    return [major, minor]
+
+
+def _value_label(x: float) -> str:
+    if 1 <= x < 1e6:
+        return f"{x:,.0f}"
+    if 1e-3 <= x < 1:
+        return f"{x:g}"
+    m, e = f"{x:.0e}".split("e")
+    return f"{m}e{int(e)}"
 
 
 def _pow_label(k: int) -> str:

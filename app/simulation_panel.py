@@ -514,7 +514,7 @@ class SimulationPanel(QWidget):
         self.view_final.toggled.connect(lambda on: on and self.run_plan.update(estimator="final"))
         self.view_avg.toggled.connect(lambda on: on and self.run_plan.update(estimator="average"))
         self.options_button = QToolButton()
-        self.options_button.setText("On edit")
+        self.options_button.setText("On edit: stop")
         self.options_button.setObjectName("simOptions")
         self.options_button.setToolTip("What a running simulation does when the chain is edited")
         self.options_button.setPopupMode(QToolButton.ToolButtonPopupMode.InstantPopup)
@@ -530,20 +530,23 @@ class SimulationPanel(QWidget):
             act.toggled.connect(lambda on, k=key: on and self.set_on_edit(k))
             self.on_edit_actions[key] = act
         self.on_edit_actions[self.on_edit()].setChecked(True)
+        self.options_button.setText(f"On edit: {self.on_edit()}")
         self.options_button.setMenu(menu)
 
         buttons = QHBoxLayout()
         buttons.setSpacing(3)
         for b in (self.run_button, self.pause_button, self.step_button, self.reset_button):
             buttons.addWidget(b)
-        buttons.addSpacing(10)
-        seg = QHBoxLayout()
-        seg.setSpacing(0)
-        seg.addWidget(self.view_final)
-        seg.addWidget(self.view_avg)
-        buttons.addLayout(seg)
         buttons.addStretch(1)
         buttons.addWidget(self.options_button)
+        views = QHBoxLayout()
+        views.setSpacing(0)
+        shown = QLabel("Estimate shown ")
+        shown.setStyleSheet(f"color: {pal.INK_SOFT.name()};")
+        views.addWidget(shown)
+        views.addWidget(self.view_final)
+        views.addWidget(self.view_avg)
+        views.addStretch(1)
 
         self.progress = QProgressBar()
         self.progress.setObjectName("simProgress")
@@ -626,6 +629,7 @@ class SimulationPanel(QWidget):
         lay.setSpacing(5)
         lay.addWidget(self.fields)
         lay.addLayout(buttons)
+        lay.addLayout(views)
         lay.addWidget(self.progress)
         lay.addWidget(self.status)
         lay.addWidget(self.prediction)
@@ -657,6 +661,7 @@ class SimulationPanel(QWidget):
         if how not in ("stop", "restart"):
             raise ValueError(how)
         self.workspace.settings.set("simulation/on_edit", how)
+        self.options_button.setText(f"On edit: {how}")
         act = self.on_edit_actions[how]
         if not act.isChecked():
             act.setChecked(True)
@@ -793,6 +798,8 @@ class SimulationPanel(QWidget):
             if self._pending is None:
                 self._pending = self.frame
             self._render()
+        if self.report is not None and self.state == "finished":
+            self._show_report(self.report)
         if self.state in ("running", "paused") and not self._same_plan():
             self.status.setText(self.status.text().split(" · plan changed")[0]
                                 + " · plan changed: press Run to apply it")
@@ -1089,31 +1096,61 @@ class SimulationPanel(QWidget):
             f"Predicted by the exact plan check: this estimate converges to a law at TV {c.tv:.3g} from the "
             f"long-run law — {word} (tolerance {c.plan.tolerance:g}). From {setup.start_text}, seed {setup.seed}.")
 
-    def _show_report(self, report) -> None:
+    def verdict_parts(self, report) -> tuple[str, str, str]:
+        """``(kind, title, text)`` of the finished run's verdict for the estimate shown."""
         from core.evolution import tv_distance
 
-        kind = {"consistent": "good", "biased": "warn", "uncertain": "warn", "incomplete": "warn",
-                "misleading": "bad", "mismatch": "bad"}.get(report.status, "warn")
-        verdict_badge(self.badge, kind, report.status.upper())
-        self.badge.setVisible(True)
+        setup = self.setup_info
+        tol = setup.values.tolerance if setup is not None else report.tolerance
         avg = self.run_plan.values.estimator == "average"
-        text = report.verdict
-        head, _, rest = text.partition(": ")
-        lines = [rest or text]
-        ens_lr = tv_distance(report.ensemble_share, report.long_run)
-        if avg and report.tv_time_average is not None:
-            lines.append(f"Measured: time average at TV {report.tv_time_average:.3g} from the long-run law"
-                         + (f" (exactly expected: {report.tv_window:.3g})" if report.tv_window is not None else "")
-                         + ".")
+        R = report.result.replicates
+        if report.status == "mismatch":
+            head, _, rest = report.verdict.partition(": ")
+            return "bad", "MISMATCH", rest or report.verdict
+        if avg:
+            kind = {"consistent": "good", "biased": "warn", "uncertain": "warn", "incomplete": "warn",
+                    "misleading": "bad"}.get(report.status, "warn")
+            head, _, rest = report.verdict.partition(": ")
+            text = rest or report.verdict
+            if report.tv_time_average is not None:
+                text += (f" Measured: the time average is at TV {report.tv_time_average:.3g} from the long-run law"
+                         + (f" (exactly expected for these kept steps: {report.tv_window:.3g})"
+                            if report.tv_window is not None else "") + ".")
+            return kind, report.status.upper(), text
+        exact_tv = tv_distance(report.exact_at_step, report.long_run)
+        meas = tv_distance(report.ensemble_share, report.long_run)
+        noise = report.tv_ensemble_noise
+        at = f"step {report.step:,}"
+        if exact_tv > tol:
+            kind, title = "bad", "MISLEADING"
+            text = (f"the {R:,} replicates at {at} are at TV {meas:.3g} from the long-run law (tolerance {tol:g}); "
+                    f"exactly, the law at that step is at {exact_tv:.3g}, so the run is too short for its start and "
+                    "more replicates would not help.")
+        elif meas > tol:
+            kind, title = "warn", "NOISY"
+            text = (f"exactly, the law at {at} is within the tolerance (TV {exact_tv:.3g} ≤ {tol:g}), but the "
+                    f"{R:,} replicates are at TV {meas:.3g} from the long-run law (noise ~{noise:.2g}): use more "
+                    "replicates.")
         else:
-            lines.append(f"Measured: the replicates at step {report.step:,} are at TV {ens_lr:.3g} from the "
-                         f"long-run law (exact law at that step: "
-                         f"{tv_distance(report.exact_at_step, report.long_run):.3g}; noise of "
-                         f"{report.result.replicates:,} replicates ~{report.tv_ensemble_noise:.2g}).")
-        self.verdict.setText(" ".join(lines))
+            kind, title = "good", "CONSISTENT"
+            text = (f"the {R:,} replicates at {at} are at TV {meas:.3g} from the long-run law, within the tolerance "
+                    f"{tol:g} (exact law at that step: {exact_tv:.3g}; noise ~{noise:.2g}).")
+        p = report.gof.pvalue
+        if math.isfinite(p):
+            text += f" The ensemble is a fair sample of the exact law at that step (chi-square p = {p:.2g})."
+        return kind, title, text
+
+    def _show_report(self, report) -> None:
+        kind, title, text = self.verdict_parts(report)
+        verdict_badge(self.badge, kind, title)
+        self.badge.setVisible(True)
+        self.verdict.setText(text[0].upper() + text[1:] if text else "")
         self.verdict.setToolTip("\n".join(report.findings))
         self.verdict.setVisible(True)
-        self.status.setText(self.status.text().replace(" · paused", "") + " · done")
+        st = self.status.text().replace(" · paused", "")
+        if not st.endswith(" · done"):
+            st += " · done"
+        self.status.setText(st)
 
     # -- teardown ------------------------------------------------------------------------------------
     def shutdown(self) -> None:
