@@ -141,13 +141,14 @@ class FindingsPane(QWidget):
         self.detail = QTextBrowser()
         self.detail.setObjectName("findingsDetail")
         self.detail.setOpenLinks(False)
-        self.detail.setPlaceholderText("Select a finding to read its explanation and remedy; its states and "
-                                       "transitions are highlighted on the canvas and in the matrix.")
+        self._hint = (f"<p style='color:{pal.INK_SOFT.name()}'>Select a finding to read its explanation and remedy; "
+                      "its states and transitions are highlighted on the canvas and in the matrix.</p>")
+        self.detail.setHtml(self._hint)
         split = QSplitter(Qt.Orientation.Vertical)
         split.addWidget(self.tree)
         split.addWidget(self.detail)
-        split.setStretchFactor(0, 3)
-        split.setStretchFactor(1, 4)
+        split.setStretchFactor(0, 2)
+        split.setStretchFactor(1, 3)
         split.setChildrenCollapsible(False)
         self.splitter = split
         lay = QVBoxLayout(self)
@@ -207,14 +208,14 @@ class FindingsPane(QWidget):
         else:
             parts = [f"{counts[s]} {s}{'s' if counts[s] != 1 else ''}" for s in ("error", "warning", "note")
                      if counts[s]]
-            text = f"{k} finding{'s' if k != 1 else ''}: " + ", ".join(parts)
+            text = ", ".join(parts) if len(parts) == 1 else f"{k} findings: " + ", ".join(parts)
             self.summary.setStyleSheet("padding: 6px 6px 4px 6px; font-weight: 600;")
         if out.plan_text:
             text += f" — with the plan: {out.plan_text}."
         elif out.note:
             text += f" ({out.note})."
         self.summary.setText(text)
-        self.detail.clear()
+        self.detail.setHtml(self._hint)
         if keep is not None:
             for row in range(self.tree.topLevelItemCount()):
                 it = self.tree.topLevelItem(row)
