@@ -1076,6 +1076,14 @@ class ChainCanvas(QGraphicsView):
         finally:
             self._syncing_selection = False
 
+    def reveal_selection(self) -> None:
+        """Scroll so the selected states and arrows are in view (for panels that select)."""
+        rect = QRectF()
+        for it in self._scene.selectedItems():
+            rect = rect.united(it.mapRectToScene(it.boundingRect()))
+        if not rect.isNull():
+            self.ensureVisible(rect, 40, 40)
+
     def select_only(self, item: QGraphicsItem | None) -> None:
         self._scene.clearSelection()
         if item is not None:

@@ -12,7 +12,15 @@ from __future__ import annotations
 from fractions import Fraction
 from typing import Any
 
-from PySide6.QtCore import QAbstractTableModel, QModelIndex, QPersistentModelIndex, Qt, Signal
+from PySide6.QtCore import (
+    QAbstractTableModel,
+    QItemSelection,
+    QItemSelectionModel,
+    QModelIndex,
+    QPersistentModelIndex,
+    Qt,
+    Signal,
+)
 from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import QAbstractItemView, QHeaderView, QMenu, QTableView, QVBoxLayout, QWidget, QLabel
 
@@ -288,6 +296,7 @@ class MatrixView(QTableView):
         self.setTextElideMode(Qt.TextElideMode.ElideRight)
         self._model.modelReset.connect(self.fit_columns)
         self.fit_columns()
+        document.selectionChanged.connect(self.show_document_selection)
         self.verticalHeader().setDefaultSectionSize(24)
         self.verticalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
         self.setContextMenuPolicy(Qt.ContextMenuPolicy.CustomContextMenu)
@@ -319,6 +328,27 @@ class MatrixView(QTableView):
         for c in range(n):
             text = str(m.headerData(c, Qt.Orientation.Horizontal) or "")
             self.setColumnWidth(c, int(min(150, max(56, fm.horizontalAdvance(text) + 22))))
+
+    def show_document_selection(self) -> None:
+        """Select the rows of the document's selected states and the cells of its transitions."""
+        if self.hasFocus() or self.state() == QAbstractItemView.State.EditingState:
+            return  # the user is working in the grid: leave its selection alone
+        doc = self.document
+        m = self._model
+        index = doc.chain.index
+        sel = QItemSelection()
+        for sid in doc.selected_states:
+            r = index.get(sid)
+            if r is not None and r < m.rowCount():
+                sel.select(m.index(r, 0), m.index(r, m.columnCount() - 1))
+        for a, b in doc.selected_transitions:
+            r, c = index.get(a), index.get(b)
+            if r is not None and c is not None and r < m.rowCount():
+                sel.select(m.index(r, c), m.index(r, c))
+        sm = self.selectionModel()
+        sm.select(sel, QItemSelectionModel.SelectionFlag.ClearAndSelect)
+        if not sel.isEmpty():
+            self.scrollTo(sel.indexes()[0])
 
     @property
     def matrix_model(self) -> MatrixModel:

@@ -136,3 +136,15 @@ def test_clear_cells_and_grid_follows_renames(window, qtbot):
     assert m.headerData(0, Qt.Orientation.Horizontal) == "alpha"
     assert m.headerData(0, Qt.Orientation.Vertical) == "alpha"
     assert m.headerData(3, Qt.Orientation.Horizontal) == "Row sum"
+
+
+def test_document_selection_shows_in_the_grid(window, qtbot):
+    three_states(window)
+    doc = window.document
+    doc.set_transitions([("a", "b", "1"), ("b", "b", "1"), ("c", "c", "1")], "setup")
+    view = grid_of(window)
+    doc.set_selection(["b"], [("a", "b")])
+    picked = {(i.row(), i.column()) for i in view.selectionModel().selectedIndexes()}
+    assert picked == {(1, 0), (1, 1), (1, 2), (1, 3), (0, 1)}
+    assert window.canvas.states["b"].isSelected() and window.canvas.arrows[("a", "b")].isSelected()
+    window.canvas.reveal_selection()
