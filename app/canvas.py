@@ -725,7 +725,7 @@ class ChainCanvas(QGraphicsView):
         self.label_font = pal.ui_font(-1.0)
         self.italic_font = pal.ui_font(-1.0, italic=True)
         self._scene = QGraphicsScene(self)
-        self._scene.setItemIndexMethod(QGraphicsScene.ItemIndexMethod.NoIndex)
+        self._scene.setItemIndexMethod(QGraphicsScene.ItemIndexMethod.BspTreeIndex)
         self.setScene(self._scene)
         self.setObjectName("chainCanvas")
         self.setRenderHints(QPainter.RenderHint.Antialiasing | QPainter.RenderHint.TextAntialiasing)

@@ -464,19 +464,35 @@ def transition_changes(old: Chain, new: Chain) -> dict[tuple[str, str], Transiti
     """
     if old.transitions is new.transitions:
         return {}
-    old_ids = set(map(id, old.transitions))
-    new_ids = set(map(id, new.transitions))
-    keys = {(t.source, t.target) for t in old.transitions if id(t) not in new_ids}
-    keys.update((t.source, t.target) for t in new.transitions if id(t) not in old_ids)
+    memo = _CHANGES_MEMO.get("last")
+    if memo is not None and memo[0] is old and memo[1] is new:
+        return memo[2]
+    ot, nt = old.transitions, new.transitions
+    # edits keep the untouched transitions in place: skip the common head and tail
+    lo, n_old, n_new = 0, len(ot), len(nt)
+    while lo < n_old and lo < n_new and ot[lo] is nt[lo]:
+        lo += 1
+    hi = 0
+    while hi < n_old - lo and hi < n_new - lo and ot[n_old - 1 - hi] is nt[n_new - 1 - hi]:
+        hi += 1
+    ow, nw = ot[lo:n_old - hi], nt[lo:n_new - hi]
+    old_ids = set(map(id, ow))
+    new_ids = set(map(id, nw))
+    keys = {(t.source, t.target) for t in ow if id(t) not in new_ids}
+    keys.update((t.source, t.target) for t in nw if id(t) not in old_ids)
     if len(keys) > max(64, len(new.transitions) // 4):
         return None
     out: dict[tuple[str, str], Transition | None] = dict.fromkeys(keys)
     if keys:
-        for t in new.transitions:
+        for t in nt:
             k = (t.source, t.target)
             if k in keys and out[k] is None:
                 out[k] = t
+    _CHANGES_MEMO["last"] = (old, new, out)
     return out
+
+
+_CHANGES_MEMO: dict[str, tuple] = {}
 
 
 _ID_RE = re.compile(r"\S")
