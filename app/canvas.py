@@ -1174,6 +1174,13 @@ class ChainCanvas(QGraphicsView):
             self._sync_lod()
             self.zoomChanged.emit(self.zoom)
 
+    def reset_view(self) -> None:
+        """100 % zoom, centred on the origin."""
+        self.resetTransform()
+        self.centerOn(0, 0)
+        self._sync_lod()
+        self.zoomChanged.emit(self.zoom)
+
     def zoom_by(self, factor: float) -> None:
         self.set_zoom(self.zoom * factor)
 
@@ -1186,8 +1193,8 @@ class ChainCanvas(QGraphicsView):
     def fit_to_view(self) -> None:
         rect = self.items_rect()
         if rect.isNull():
-            self.resetTransform()
-            self.centerOn(0, 0)
+            self.reset_view()
+            return
         else:
             rect = rect.adjusted(-30, -30, 30, 30)
             self._grow_scene_rect(rect)

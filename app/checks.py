@@ -43,7 +43,10 @@ class ChecksPanel(QWidget):
         self.list.blockSignals(True)
         self.list.clear()
         chain = report.chain
-        if report.valid:
+        if chain.n == 0:
+            self.summary.setText("An empty chain: double-click the canvas to add a first state.")
+            self.summary.setStyleSheet(f"padding: 6px; font-weight: 600; color: {pal.INK_SOFT.name()};")
+        elif report.valid:
             n, m = chain.n, len(chain.transitions)
             self.summary.setText(f"✓ Valid: {n} state{'s' if n != 1 else ''}, "
                                  f"{m} transition{'s' if m != 1 else ''}, every row sums to 1.")

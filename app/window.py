@@ -296,7 +296,11 @@ class MainWindow(QMainWindow):
         self.statusBar().showMessage(text, ms)
 
     def _show_validation(self, report) -> None:
-        if report.valid:
+        if report.chain.n == 0:
+            self.validity_label.setText("empty chain")
+            self.validity_label.setStyleSheet(f"color: {pal.INK_SOFT.name()};")
+            self.validity_label.setToolTip("double-click the canvas to add a state")
+        elif report.valid:
             self.validity_label.setText("✓ valid")
             self.validity_label.setStyleSheet("color: #00785A; font-weight: 600;")
             self.validity_label.setToolTip("every row sums to 1 and every entry is a probability")
@@ -445,8 +449,7 @@ class MainWindow(QMainWindow):
         if not self.maybe_save():
             return
         self.document.reset(Chain(name=""))
-        self.canvas.resetTransform()
-        self.canvas.centerOn(0, 0)
+        self.canvas.reset_view()
         self.show_message("New chain: double-click the canvas to add a state")
 
     def file_open(self) -> None:
