@@ -279,18 +279,10 @@ class FindingsPane(QWidget):
         self._reveal(states, trans)
 
     def _reveal(self, states, trans) -> None:
-        """Scroll the canvas so the highlighted states are in view (when it can)."""
-        canvas = self.workspace.canvas
-        items = getattr(canvas, "states", None)
-        if canvas is None or not isinstance(items, dict):
-            return
-        rect = QRectF()
-        for sid in states:
-            it = items.get(sid)
-            if it is not None:
-                rect = rect.united(it.sceneBoundingRect())
-        if not rect.isNull():
-            canvas.ensureVisible(rect, 40, 40)
+        """Scroll the canvas so the highlighted states and transitions are in view."""
+        reveal = getattr(self.workspace.canvas, "reveal_selection", None)
+        if callable(reveal) and (states or trans):
+            reveal()
 
     def shutdown(self) -> None:
         self.job.shutdown()
