@@ -518,7 +518,8 @@ class ArrowItem(QGraphicsItem):
         self._static.prepare(QTransform(), self._static_font)
 
     def paint(self, painter: QPainter, option: QStyleOptionGraphicsItem, widget: QWidget | None = None) -> None:
-        smooth = self.canvas.smooth
+        canvas = self.canvas
+        smooth = canvas.lod >= SMOOTH_LOD or canvas.interacting  # while moving, the view is aliased already
         if not smooth:
             painter.setRenderHint(QPainter.RenderHint.Antialiasing, False)
         if self.isSelected():
@@ -533,7 +534,7 @@ class ArrowItem(QGraphicsItem):
         painter.drawPolygon(self._head)
         if not smooth:
             painter.setRenderHint(QPainter.RenderHint.Antialiasing, True)
-        if self.canvas.lod < LABEL_LOD or not self._text:
+        if canvas.lod < LABEL_LOD or not self._text or canvas.interacting:
             return
         painter.setPen(self._frame)
         painter.setBrush(_LABEL_BG)
@@ -741,6 +742,7 @@ class ChainCanvas(QGraphicsView):
 
         self.lod = 1.0
         self.interacting = False
+        self._deferred: set[str] = set()
         self._bg_cache: tuple[float, QBrush] | None = None
         self._overview = OverviewEdges(self)
         self._scene.addItem(self._overview)
@@ -988,7 +990,10 @@ class ChainCanvas(QGraphicsView):
             arrange.add(sid)
             for key in self._incident.get(sid, ()):
                 relayout.add(key)
-                arrange.update(key)
+                if self.interacting:  # neighbours' loops and plates are tidied when the drag ends
+                    self._deferred.update(key)
+                else:
+                    arrange.update(key)
         for sid in arrange:
             if sid in self.states:
                 self._arrange_node(sid)
@@ -1278,7 +1283,8 @@ class ChainCanvas(QGraphicsView):
                     "mode": "move", "start": sp, "token": ("move", next(_drag_tokens)),
                     "origin": {sid: QPointF(self.states[sid].pos()) for sid in moving},
                 }
-                self.interacting = len(self.arrows) > 300  # quick drawing while a big chain moves
+                if len(self.arrows) > 300:  # quick drawing while a big chain moves
+                    self._begin_interaction()
                 self.viewport().setCursor(Qt.CursorShape.ClosedHandCursor)
             event.accept()
             return
@@ -1333,8 +1339,7 @@ class ChainCanvas(QGraphicsView):
         else:
             self._press = None
         if self.interacting:
-            self.interacting = False
-            self.viewport().update()  # full quality again
+            self._end_interaction()
         self.viewport().unsetCursor()
         event.accept()
 
@@ -1462,6 +1467,26 @@ class ChainCanvas(QGraphicsView):
     def _place_legend(self) -> None:
         vp = self.viewport().geometry()
         self.legend.move(vp.left() + 10, vp.bottom() - self.legend.height() - 10)
+
+    def _begin_interaction(self) -> None:
+        """Big chain being dragged: aliased drawing, no arrow labels, neighbours tidied at the end."""
+        self.interacting = True
+        self.setRenderHint(QPainter.RenderHint.Antialiasing, False)
+
+    def _end_interaction(self) -> None:
+        self.interacting = False
+        self.setRenderHint(QPainter.RenderHint.Antialiasing, True)
+        pending, self._deferred = self._deferred, set()
+        relayout = set()
+        for sid in pending:
+            if sid in self.states:
+                self._arrange_node(sid)
+                if (sid, sid) in self.arrows:
+                    relayout.add((sid, sid))
+        for key in relayout:
+            self._layout_arrow(key)
+        self._place_labels(relayout)
+        self.viewport().update()  # full quality again
 
     @property
     def smooth(self) -> bool:

@@ -309,3 +309,20 @@ def test_incremental_update_keeps_untouched_items(window, qtbot):
     for k, v in items.items():
         assert id(canvas.arrows[k]) == v
     assert isinstance(canvas.arrows[("worn", "new")], ArrowItem)
+
+
+def test_quick_drawing_while_dragging_defers_the_neighbours_tidying(window, qtbot):
+    # (the canvas switches to this mode by itself for chains of more than 300 arrows)
+    two_state_doc(window)
+    canvas, doc = window.canvas, window.document
+    before = canvas.states["a"].loop_angle  # a's loop points away from b (to the left)
+    canvas._begin_interaction()
+    assert not canvas.renderHints() & canvas.renderHints().Antialiasing
+    doc.move_states({"b": (-150.0, -300.0)}, merge=("move", "t"))  # b goes above a
+    assert canvas.states["a"].loop_angle == before
+    canvas._end_interaction()
+    after = canvas.states["a"].loop_angle
+    assert after != before
+    # the loop now avoids the arrow to b, which leaves a straight upwards (angle -pi/2)
+    assert abs(math.remainder(after + math.pi / 2, 2 * math.pi)) > math.radians(60)
+    assert canvas.renderHints() & canvas.renderHints().Antialiasing
