@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import Callable, Iterable
 
-from PySide6.QtCore import QEvent, QLineF, QPointF, QRectF, Qt, QTimer, Signal
+from PySide6.QtCore import QEvent, QLineF, QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import (
     QBrush,
     QColor,
@@ -44,7 +44,6 @@ from PySide6.QtWidgets import (
     QGraphicsScene,
     QGraphicsView,
     QLineEdit,
-    QStyle,
     QStyleOptionGraphicsItem,
     QWidget,
 )

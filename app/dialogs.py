@@ -41,7 +41,7 @@ def ask_save_changes(parent: QWidget | None, name: str) -> str:
     box.setInformativeText("Save them before going on?")
     save = box.addButton("Save", QMessageBox.ButtonRole.AcceptRole)
     discard = box.addButton("Don't save", QMessageBox.ButtonRole.DestructiveRole)
-    cancel = box.addButton(QMessageBox.StandardButton.Cancel)
+    box.addButton(QMessageBox.StandardButton.Cancel)
     box.setDefaultButton(save)
     box.exec()
     clicked = box.clickedButton()

@@ -12,9 +12,10 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from PySide6.QtCore import QPointF, Qt, QTimer, QUrl
-from PySide6.QtGui import QAction, QActionGroup, QDesktopServices, QKeySequence
+from PySide6.QtCore import QPointF, Qt, QTimer
+from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import (
+    QApplication,
     QDockWidget,
     QLabel,
     QMainWindow,
@@ -144,6 +145,9 @@ class MainWindow(QMainWindow):
         a["open"] = self._action("&Open…", self.file_open, K.Open, tip="Open a chain file", icon_name="open")
         a["import_csv"] = self._action("&Import Matrix CSV…", self.import_csv, "Ctrl+Shift+I",
                                        tip="Read a transition matrix from a CSV file")
+        a["new_from_data"] = self._action("New Chain from &Data…", self.new_from_data,
+                                          tip="Fit a chain to observed states in a CSV file (opens as a new, "
+                                              "unsaved chain)")
         a["save"] = self._action("&Save", self.file_save, K.Save, tip="Save the chain", icon_name="save")
         a["save_as"] = self._action("Save &As…", self.file_save_as, K.SaveAs, tip="Save under a new name")
         a["revert"] = self._action("&Revert to Saved", self.file_revert,
@@ -151,6 +155,9 @@ class MainWindow(QMainWindow):
         a["export_json"] = self._action("Validated Matrix (&JSON)…", self.export_json,
                                         tip="Hand over the validated matrix with its SHA-256")
         a["export_csv"] = self._action("Matrix (&CSV)…", self.export_csv, tip="The validated matrix as CSV")
+        a["export_report"] = self._action("Export &Report…", self.export_report,
+                                          tip="Write the client report (HTML or PDF) of the chain and the plan "
+                                              "in the Plan check panel")
         a["quit"] = self._action("&Quit", self.close, K.Quit)
         undo = self.document.undo_stack.createUndoAction(self, "&Undo")
         undo.setShortcut(QKeySequence(K.Undo))
@@ -190,7 +197,7 @@ class MainWindow(QMainWindow):
         a = self.actions_by_name
         mb = self.menuBar()
         f = mb.addMenu("&File")
-        f.addActions([a["new"], a["open"]])
+        f.addActions([a["new"], a["new_from_data"], a["open"]])
         self.recent_menu = f.addMenu("Open &Recent")
         self.recent_menu.aboutToShow.connect(self._fill_recent)
         f.addAction(a["import_csv"])
@@ -199,6 +206,7 @@ class MainWindow(QMainWindow):
         f.addSeparator()
         exp = f.addMenu("&Export")
         exp.addActions([a["export_json"], a["export_csv"]])
+        f.addAction(a["export_report"])
         f.addSeparator()
         f.addAction(a["quit"])
         e = mb.addMenu("&Edit")
@@ -284,6 +292,18 @@ class MainWindow(QMainWindow):
             self.resizeDocks([self.docks["matrix"]], [240], Qt.Orientation.Vertical)
         if "matrix" in self.docks and "checks" in self.docks:
             self.resizeDocks([self.docks["matrix"], self.docks["checks"]], [700, 360], Qt.Orientation.Horizontal)
+        self._arrange_analysis_docks()
+
+    def _arrange_analysis_docks(self) -> None:
+        """The analysis panels (long run, simulation, plan check, findings) take the right side, full height."""
+        if "longrun" not in self.docks:
+            return
+        self.setCorner(Qt.Corner.TopRightCorner, Qt.DockWidgetArea.RightDockWidgetArea)
+        self.setCorner(Qt.Corner.BottomRightCorner, Qt.DockWidgetArea.RightDockWidgetArea)
+        self.resizeDocks([self.docks["longrun"]], [600], Qt.Orientation.Horizontal)
+        if "matrix" in self.docks and "checks" in self.docks:
+            self.resizeDocks([self.docks["matrix"], self.docks["checks"]], [560, 300], Qt.Orientation.Horizontal)
+        self.docks["longrun"].raise_()
 
     # -- status -------------------------------------------------------------------
     def _autosave_failed(self, message: str) -> None:
@@ -539,6 +559,64 @@ class MainWindow(QMainWindow):
 
     def export_csv(self) -> None:
         self._export("csv")
+
+    def export_report(self) -> bool:
+        """File ▸ Export Report…: the client report with the plan of the Plan check panel."""
+        from .report import export_document_report
+
+        stem = self.document.path.stem if self.document.path else _safe_name(self.document.chain.name)
+        suggested = str(Path(self._folder()) / f"{stem}-report.html")
+        path = dialogs.save_path(self, "Export the report", suggested,
+                                 "Report, HTML or PDF (*.html *.pdf);;HTML page (*.html);;PDF document (*.pdf)")
+        if not path:
+            return False
+        p = Path(path)
+        if p.suffix.lower() not in (".html", ".htm", ".pdf"):
+            p = p.with_name(p.name + ".html")
+        plan, epsilon = self.current_plan()
+        QApplication.setOverrideCursor(Qt.CursorShape.WaitCursor)
+        try:
+            info = export_document_report(self.document, p, plan=plan, epsilon=epsilon)
+        except LongrunError as exc:
+            QApplication.restoreOverrideCursor()
+            summary, items = _problem_lines(exc)
+            dialogs.show_problems(self, "Report not written", f"“{p.name}” was not written: {summary}", items)
+            return False
+        QApplication.restoreOverrideCursor()
+        self._remember_folder(p)
+        what = "with the plan check" if plan is not None else "without a plan"
+        self.show_message(f"Wrote the report {p.name} ({what})", 10000)
+        return bool(info)
+
+    def current_plan(self):
+        """``(core.plan.Plan or None, epsilon)`` from the shared plan of the analysis panels."""
+        rp = getattr(self.workspace, "run_plan", None)
+        if rp is None:
+            return None, 0.25
+        chain = self.document.chain
+        if not chain.n or not chain.is_valid:
+            return None, rp.values.epsilon
+        from .plan_form import resolve_plan
+
+        return resolve_plan(chain, rp.values).plan, rp.values.epsilon
+
+    def new_from_data(self) -> bool:
+        """File ▸ New Chain from Data…: fit a chain to observations; it opens as a new, unsaved chain."""
+        if not self.maybe_save():
+            return False
+        from .fit_dialog import FitDialog
+
+        chain = FitDialog.get_chain(self, folder=self._folder())
+        if chain is None:
+            return False
+        self.document.reset(chain)
+        self.document.undo_stack.resetClean()  # fitted but never saved: closing asks to save it
+        self.document.fileChanged.emit()
+        self.document.set_selection()
+        self.canvas.fit_to_view()
+        n = chain.n
+        self.show_message(f"New chain fitted from data: {n} state{'s' if n != 1 else ''} (not saved yet)", 10000)
+        return True
 
     def _fill_recent(self) -> None:
         self.recent_menu.clear()

@@ -3,7 +3,7 @@ import math
 
 import pytest
 from PySide6.QtCore import QPoint, QPointF, Qt
-from PySide6.QtGui import QKeySequence
+from PySide6.QtGui import QKeySequence, QPainter
 from PySide6.QtTest import QTest
 
 from app.canvas import NODE_RADIUS, ArrowItem
@@ -317,7 +317,7 @@ def test_quick_drawing_while_dragging_defers_the_neighbours_tidying(window, qtbo
     canvas, doc = window.canvas, window.document
     before = canvas.states["a"].loop_angle  # a's loop points away from b (to the left)
     canvas._begin_interaction()
-    assert not canvas.renderHints() & canvas.renderHints().Antialiasing
+    assert not canvas.renderHints() & QPainter.RenderHint.Antialiasing
     doc.move_states({"b": (-150.0, -300.0)}, merge=("move", "t"))  # b goes above a
     assert canvas.states["a"].loop_angle == before
     canvas._end_interaction()
@@ -325,4 +325,4 @@ def test_quick_drawing_while_dragging_defers_the_neighbours_tidying(window, qtbo
     assert after != before
     # the loop now avoids the arrow to b, which leaves a straight upwards (angle -pi/2)
     assert abs(math.remainder(after + math.pi / 2, 2 * math.pi)) > math.radians(60)
-    assert canvas.renderHints() & canvas.renderHints().Antialiasing
+    assert canvas.renderHints() & QPainter.RenderHint.Antialiasing

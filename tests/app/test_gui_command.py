@@ -71,7 +71,6 @@ def test_shipped_sample_matches_the_repository_sample():
 
 def test_first_start_opens_the_sample_then_not_again(qtbot, monkeypatch, dialogs):
     """run_gui without a file: the sample the first time, an empty chain afterwards."""
-    from PySide6.QtCore import QTimer
     from PySide6.QtWidgets import QApplication
 
     from app import main as app_main
