@@ -284,6 +284,11 @@ class FindingsPane(QWidget):
         if callable(reveal) and (states or trans):
             reveal()
 
+    @property
+    def busy(self) -> bool:
+        """The findings are being recomputed."""
+        return self.job.busy
+
     def shutdown(self) -> None:
         self.job.shutdown()
 

@@ -194,8 +194,8 @@ class LongRunPanel(QWidget):
         self.summary.setObjectName("longrunSummary")
         self.summary.setWordWrap(True)
         self.summary.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
-        self.busy = QLabel("")
-        self.busy.setStyleSheet(f"color: {pal.INK_SOFT.name()};")
+        self.busy_label = QLabel("")
+        self.busy_label.setStyleSheet(f"color: {pal.INK_SOFT.name()};")
         self.eps_fields = PlanFields(workspace, self.run_plan, ("epsilon",), columns=1)
         self.eps_fields.setSizePolicy(QSizePolicy.Policy.Maximum, QSizePolicy.Policy.Fixed)
 
@@ -245,7 +245,7 @@ class LongRunPanel(QWidget):
         head.addWidget(self.eps_fields, 0, Qt.AlignmentFlag.AlignTop)
         lay.addLayout(head)
         lay.addWidget(self.summary)
-        lay.addWidget(self.busy)
+        lay.addWidget(self.busy_label)
         lay.addWidget(_section("Classes"))
         lay.addWidget(self.classes)
         lay.addWidget(_section("Stationary laws and mean return times"))
@@ -276,7 +276,7 @@ class LongRunPanel(QWidget):
         an.resultReady.connect(self._on_result)
         an.jobFailed.connect(self._on_failed)
         an.structureReady.connect(self._on_structure)
-        an.busyChanged.connect(lambda b: self.busy.setText("updating…" if b else ""))
+        an.busyChanged.connect(lambda b: self.busy_label.setText("updating…" if b else ""))
         self.run_plan.changed.connect(self._plan_changed)
         params = self._params
 
@@ -510,11 +510,11 @@ class LongRunPanel(QWidget):
             self.time_labels["mixing"].setText("beyond 4.6e18 steps (more than can be computed)")
         sp = r.spectrum
         if sp.relaxation_time is not None:
-            self.time_labels["relaxation"].setText(f"{steps_text(sp.relaxation_time, step)} (1 / spectral gap)")
+            self.time_labels["relaxation"].setText(f"{steps_text(_whole(sp.relaxation_time), step)} (1 / spectral gap)")
         else:
             self.time_labels["relaxation"].setText("not defined: the spectral gap is 0 (a periodic closed class)")
         self.time_labels["gap"].setText(f"{_num(sp.gap)}  (second-largest eigenvalue modulus {_num(sp.slem)})")
-        kem = [f"C{k + 1}: {steps_text(K, None)}" for k, K in enumerate(r.kemeny) if s.classes[s.closed[k]].size > 1]
+        kem = [f"C{k + 1}: {steps_text(_whole(K), None)}" for k, K in enumerate(r.kemeny) if s.classes[s.closed[k]].size > 1]
         self.time_labels["kemeny"].setText("; ".join(kem) + " (expected steps to a state drawn from the "
                                            "stationary law)" if kem else "— (no closed class of two or more states)")
         if s.irreducible:
@@ -584,14 +584,25 @@ class LongRunPanel(QWidget):
         top = max(hs + [h + e for h, e in zip(err_y, err_hi)])
         it.setYRange(0, nice_upper(top * 1.05), padding=0)
         k_used = sorted({k for _i, k in nontrivial})
-        self.law_chart.set_legend([("outline", pal.class_colour(k), f"C{k + 1}") for k in k_used]
+        self.law_chart.set_legend([("fill", pal.tint(pal.class_colour(k), 0.35), f"closed class C{k + 1}")
+                                   for k in k_used]
                                   + ([("band", pal.INK, "interval")] if err_x else []))
         self.law_note.setText("")
+
+    @property
+    def busy(self) -> bool:
+        """The analysis of the current chain is not on screen yet."""
+        return not self.workspace.analysis.is_idle
 
     def shutdown(self) -> None:
         an = self.workspace.analysis
         an.unregister(JOB)
         an.unregister(INTERVAL_JOB)
+
+
+def _whole(x: float) -> float:
+    """Times of a thousand steps and more shown to the whole step (``1,317`` rather than ``1317.4``)."""
+    return float(round(x)) if math.isfinite(x) and 1000 <= abs(x) < 1e6 else x
 
 
 def _num(x: float | None) -> str:

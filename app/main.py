@@ -42,7 +42,7 @@ def create_application(argv: list[str] | None = None):
 
 
 def run_gui(file: str | None = None, *, screenshot: str | None = None,
-            size: tuple[int, int] | None = None) -> int:
+            size: tuple[int, int] | None = None, panel: str | None = None, run_plan: bool = False) -> int:
     """Open the app (optionally on ``file``); with ``screenshot`` save a picture and exit.
 
     Returns the process exit status.
@@ -55,7 +55,8 @@ def run_gui(file: str | None = None, *, screenshot: str | None = None,
     if screenshot:
         from .screenshot import take_screenshot
 
-        return take_screenshot(file or str(sample_model_path()), screenshot, size=size or (1400, 900))
+        return take_screenshot(file or str(sample_model_path()), screenshot, size=size or (1400, 900),
+                               panel=panel, run_plan=run_plan)
     win = MainWindow(settings)
     opened = False
     if file:

@@ -33,7 +33,8 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = ["PanelSpec", "Workspace", "PANEL_MODULES", "panel_specs"]
 
 #: Modules that define ``PANELS`` (in the order their docks are created).
-PANEL_MODULES: tuple[str, ...] = ("app.grid", "app.checks")
+PANEL_MODULES: tuple[str, ...] = ("app.grid", "app.checks", "app.longrun_panel", "app.simulation_panel",
+                                   "app.plan_form", "app.findings_pane")
 
 
 @dataclass

@@ -1229,6 +1229,11 @@ class PlanForm(QWidget):
         self.run_plan.request_run("recommended")
         return True
 
+    @property
+    def busy(self) -> bool:
+        """A check is pending or running."""
+        return self.job.busy
+
     def shutdown(self) -> None:
         self.job.shutdown()
 

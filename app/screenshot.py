@@ -65,8 +65,49 @@ def grab_window(window):
     return window.grab()
 
 
-def take_screenshot(file: str, out: str, *, size: tuple[int, int] = (1400, 900)) -> int:
-    """Open ``file`` in a fresh window of ``size``, save its picture to ``out``; exit status."""
+def _wait_until(pred, timeout_ms: int) -> bool:
+    import time
+
+    end = time.monotonic() + timeout_ms / 1000
+    while not pred():
+        if time.monotonic() > end:
+            return False
+        _settle(30)
+    return True
+
+
+def _show_panel(win, panel: str | None, run_plan: bool) -> None:
+    """Bring ``panel`` to the front, and run the plan in the simulation panel to its end."""
+    if panel:
+        dock = win.docks.get(panel)
+        if dock is None:
+            raise OptionError(f"--panel {panel!r}: no such panel (choose from {', '.join(win.docks)})")
+        dock.show()
+        dock.raise_()
+    if run_plan:
+        sim = win.panels.get("simulation")
+        if sim is None:
+            raise OptionError("--run-plan: the simulation panel is not available")
+        if not panel:
+            win.docks["simulation"].raise_()
+        _wait_until(lambda: not any(getattr(p, "busy", False) for p in win.panels.values()), 30000)
+        if not sim.run():
+            raise LongrunError(f"--run-plan: the plan could not run: {sim.status.text()}")
+        if not _wait_until(lambda: sim.state not in ("running", "paused"), 120000):
+            sim.reset()
+            raise LongrunError("--run-plan: the run did not finish within 2 minutes; no screenshot was taken")
+        if sim.state != "finished":
+            raise LongrunError(f"--run-plan: the run stopped: {sim.status.text()}")
+    _wait_until(lambda: not any(getattr(p, "busy", False) for p in win.panels.values()), 30000)
+
+
+def take_screenshot(file: str, out: str, *, size: tuple[int, int] = (1400, 900), panel: str | None = None,
+                    run_plan: bool = False) -> int:
+    """Open ``file`` in a fresh window of ``size``, save its picture to ``out``; exit status.
+
+    ``panel`` brings that dock to the front; ``run_plan`` runs the plan in the
+    simulation panel to its end first.
+    """
     from PySide6.QtWidgets import QApplication
 
     from .settings import Settings
@@ -101,6 +142,7 @@ def take_screenshot(file: str, out: str, *, size: tuple[int, int] = (1400, 900))
             raise LongrunError("the analysis did not finish within 30 s; no screenshot was taken")
         win.canvas.fit_to_view()
         _settle()
+        _show_panel(win, panel, run_plan)
         win.canvas.fit_to_view()
         _settle()
         pix = grab_window(win)

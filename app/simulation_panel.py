@@ -83,6 +83,8 @@ RHAT_INTERVAL = 0.5
 REFRESH_MS = 40
 #: Most simulated points kept on the TV chart (one per 1/200 of a decade of steps).
 TV_POINTS_PER_DECADE = 200
+#: Steps per decade at which the worker measures the TV distance for the chart.
+TRACE_PER_DECADE = 100
 
 _THREADS: "weakref.WeakSet[SimulationThread]" = weakref.WeakSet()
 
@@ -154,6 +156,7 @@ class LiveFrame:
     tv_average: float | None
     rhat_max: float | None
     rate: float
+    trace: tuple = ()
 
 
 class _ExactTracker:
@@ -337,14 +340,27 @@ class SimulationThread(QThread):
             avg_tv=avg_tv, noise_floor=floor, seed=sim.seed, notes=tuple(notes)))
         tracker = _ExactTracker(P, pi0, sim.burn_in, s, sim.kept_planned)
 
-        def send(snap, rate, rhat):
+        trace: list[tuple] = []
+
+        def observe(snap) -> tuple[float, float | None]:
             avg = snap.time_average
+            tv_e = tv_distance(snap.ensemble_share, long_run)
+            tv_a = None if avg is None else tv_distance(avg, long_run)
+            trace.append((snap.step, tv_e, sim.burn_in + snap.kept * s if snap.kept else 0, tv_a))
+            return tv_e, tv_a
+
+        def send(snap, rate, rhat):
+            if not trace or trace[-1][0] != snap.step:
+                tv_e, tv_a = observe(snap)
+            else:
+                tv_e, tv_a = trace[-1][1], trace[-1][3]
             self.frame.emit(rid, LiveFrame(
                 run_id=rid, snap=snap, exact_now=tracker.v.copy(), exact_kept=tracker.kept_mean(),
-                tv_ensemble=tv_distance(snap.ensemble_share, long_run),
-                tv_average=None if avg is None else tv_distance(avg, long_run), rhat_max=rhat, rate=rate))
+                tv_ensemble=tv_e, tv_average=tv_a, rhat_max=rhat, rate=rate, trace=tuple(trace)))
+            trace.clear()
 
         send(sim.snapshot(), 0.0, None)
+        next_trace = 1
         per_step = None
         last_emit = last_rhat = 0.0
         rhat = None
@@ -362,6 +378,8 @@ class SimulationThread(QThread):
                     self._pace_reset = False
             remaining = total - sim.t
             budget = 1 if per_step is None else max(1, int(CHUNK_SECONDS / per_step))
+            if next_trace > sim.t:  # stop at the log-spaced steps of the TV chart
+                budget = min(budget, next_trace - sim.t)
             if stepping:
                 with self._cond:
                     k = min(self._wanted, remaining, budget)
@@ -384,6 +402,10 @@ class SimulationThread(QThread):
             dt = time.perf_counter() - t0
             ps = dt / k
             per_step = ps if per_step is None else 0.7 * per_step + 0.3 * ps
+            if sim.t >= next_trace:
+                next_trace = _next_trace_step(sim.t)
+                if not sim.done:
+                    observe(sim.snapshot())
             now = time.monotonic()
             slow = speed is not None and speed <= 1 / FRAME_INTERVAL
             if stepping or slow or sim.done or now - last_emit >= FRAME_INTERVAL:
@@ -408,6 +430,11 @@ class SimulationThread(QThread):
 # ---------------------------------------------------------------------------
 # the panel
 # ---------------------------------------------------------------------------
+def _next_trace_step(t: int) -> int:
+    """The next step at which the TV chart gets a point: every step up to 100, then 1/100 of a decade apart."""
+    return max(t + 1, int(math.ceil(t * 10 ** (1 / TRACE_PER_DECADE))))
+
+
 def _tool(text: str, icon: QStyle.StandardPixmap | None, tip: str, name: str) -> QToolButton:
     b = QToolButton()
     b.setText(text)
@@ -590,7 +617,8 @@ class SimulationPanel(QWidget):
         ti = self.tv.item
         self.tv_curve = pg.PlotDataItem(pen=pg.mkPen(CURVE, width=2.2))
         self.tv_avg_curve = pg.PlotDataItem(pen=pg.mkPen(AVG_CURVE, width=2.2, style=Qt.PenStyle.DashLine))
-        self.tv_points = pg.ScatterPlotItem(size=5, brush=pg.mkBrush(SIM), pen=pg.mkPen(SIM.darker(130), width=0.6))
+        self.tv_points = pg.ScatterPlotItem(size=4.5, brush=pg.mkBrush(SIM.red(), SIM.green(), SIM.blue(), 170),
+                                             pen=pg.mkPen(SIM.darker(130), width=0.5))
         self.tol_line = pg.InfiniteLine(angle=0, pen=pg.mkPen(GUIDE, width=1.3, style=Qt.PenStyle.DashLine))
         self.floor_line = pg.InfiniteLine(angle=0, pen=pg.mkPen(GUIDE, width=1.3, style=Qt.PenStyle.DotLine))
         self.now_line = pg.InfiniteLine(angle=90, pen=pg.mkPen(pal.tint(pal.INK, 0.55), width=1))
@@ -826,11 +854,10 @@ class SimulationPanel(QWidget):
         if rid != self.run_id or self.setup_info is None:
             self.dropped_frames += 1
             return
-        snap = frame.snap
-        self._add_tv_point("final", snap.step, frame.tv_ensemble)
-        if frame.tv_average is not None and snap.kept:
-            s = self.setup_info.values.stride
-            self._add_tv_point("average", self.setup_info.values.burn_in + snap.kept * s, frame.tv_average)
+        for step, tv_e, x_avg, tv_a in frame.trace:
+            self._add_tv_point("final", step, tv_e)
+            if tv_a is not None and x_avg:
+                self._add_tv_point("average", x_avg, tv_a)
         self._pending = frame
 
     def _on_finished(self, rid: int, report) -> None:
@@ -1184,5 +1211,5 @@ def replace_estimator(values: PlanValues, estimator: str) -> tuple:
 
 PANELS = [
     PanelSpec("simulation", "Simulation", SimulationPanel, area=Qt.DockWidgetArea.RightDockWidgetArea,
-              tab_with="longrun", shortcut="Ctrl+Shift+M"),
+              tab_with="longrun", shortcut="Ctrl+Shift+R"),
 ]

@@ -30,6 +30,11 @@ def add_arguments(parser):
                         help="save a picture of the window to OUT.png and exit")
     parser.add_argument("--size", metavar="WxH", type=_size, default=None,
                         help="window size in pixels (default 1400x900 for screenshots)")
+    parser.add_argument("--panel", metavar="NAME", default=None,
+                        help="with --screenshot: bring this panel to the front (longrun, simulation, plan, "
+                        "findings, matrix, checks)")
+    parser.add_argument("--run-plan", action="store_true",
+                        help="with --screenshot: run the plan in the simulation panel to the end first")
 
 
 def run(args) -> int:
@@ -37,4 +42,6 @@ def run(args) -> int:
         from app.main import run_gui
     except ImportError as exc:  # PySide6 missing or broken Qt libraries
         raise OptionError(f"the desktop app cannot start: {exc}") from None
-    return run_gui(args.file, screenshot=args.screenshot, size=args.size)
+    if (args.panel or args.run_plan) and not args.screenshot:
+        raise OptionError("--panel and --run-plan go with --screenshot")
+    return run_gui(args.file, screenshot=args.screenshot, size=args.size, panel=args.panel, run_plan=args.run_plan)
