@@ -10,6 +10,7 @@ crash recovery (:mod:`app.recovery`).
 from __future__ import annotations
 
 import os
+import sys
 from pathlib import Path
 
 from PySide6.QtCore import QPointF, Qt, QTimer
@@ -35,7 +36,7 @@ from .canvas import ChainCanvas
 from .document import Document
 from .icons import icon
 from .layout import LAYOUTS
-from .panels import PanelSpec, Workspace, panel_specs
+from .panels import PANEL_MODULES, PanelSpec, Workspace, panel_specs
 from .recovery import Autosaver, find_orphans
 from .settings import Settings
 
@@ -71,10 +72,13 @@ class MainWindow(QMainWindow):
         Keep a recovery copy of unsaved work (off for screenshots).
     restore_layout : bool
         Restore the window size and dock places of the last session.
+    panels : tuple of str, optional
+        Panel modules to dock (default :data:`app.panels.PANEL_MODULES`).
     """
 
     def __init__(self, settings: Settings | None = None, *, autosave: bool = True,
-                 restore_layout: bool = True, parent: QWidget | None = None):
+                 restore_layout: bool = True, panels: tuple[str, ...] | None = None,
+                 parent: QWidget | None = None):
         super().__init__(parent)
         self.settings = settings or Settings()
         self.setObjectName("longrunMainWindow")
@@ -91,15 +95,20 @@ class MainWindow(QMainWindow):
         self.workspace = Workspace(self.document, self.analysis, self.settings, self, self.show_message, self.canvas)
         self.docks: dict[str, QDockWidget] = {}
         self.panels: dict[str, QWidget] = {}
+        self.panel_errors: dict[str, str] = {}
         self._closed = False
-
-        self._build_actions()
-        self._build_menus()
-        self._build_toolbar()
-        self._build_status()
-        self._build_docks(panel_specs())
-
         self.autosaver: Autosaver | None = None
+
+        try:
+            self._build_actions()
+            self._build_menus()
+            self._build_toolbar()
+            self._build_status()
+            self._build_docks(self._panel_specs(panels))
+        except BaseException:
+            self.analysis.shutdown()  # no thread outlives a window that failed to build
+            raise
+
         if autosave:
             self.autosaver = Autosaver(self.document, interval_s=self.settings.get("recovery/interval_s"),
                                        settle_ms=self.settings.get("recovery/settle_ms"), parent=self)
@@ -123,6 +132,8 @@ class MainWindow(QMainWindow):
                 self.restoreState(st)
         self._update_title()
         self._update_actions()
+        if self.panel_errors:
+            self.show_message("Some panels could not start: " + ", ".join(self.panel_errors), 15000)
 
     # -- construction -------------------------------------------------------------
     def _action(self, text: str, slot, shortcut=None, *, tip: str = "", icon_name: str | None = None) -> QAction:
@@ -266,9 +277,28 @@ class MainWindow(QMainWindow):
             w.setContentsMargins(8, 0, 8, 0)
             sb.addPermanentWidget(w)
 
+    def _panel_specs(self, modules: tuple[str, ...] | None) -> list[PanelSpec]:
+        specs: list[PanelSpec] = []
+        for name in (PANEL_MODULES if modules is None else modules):
+            try:
+                specs.extend(panel_specs((name,)))
+            except Exception as exc:  # a broken panel module must not take the editor down
+                self._panel_failed(name, exc)
+        return specs
+
+    def _panel_failed(self, name: str, exc: BaseException) -> None:
+        import traceback
+
+        self.panel_errors[name] = f"{type(exc).__name__}: {exc}"
+        sys.stderr.write(f"longrun: the panel {name!r} could not start:\n{traceback.format_exc()}")
+
     def _build_docks(self, specs: list[PanelSpec]) -> None:
         for spec in specs:
-            widget = spec.factory(self.workspace)
+            try:
+                widget = spec.factory(self.workspace)
+            except Exception as exc:
+                self._panel_failed(spec.key, exc)
+                continue
             dock = QDockWidget(spec.title, self)
             dock.setObjectName(f"dock_{spec.key}")
             dock.setWidget(widget)

@@ -111,7 +111,9 @@ def window(qtbot, dialogs):
     from app.window import MainWindow
 
     create_application()
-    w = MainWindow(Settings(), restore_layout=False)
+    # the editor's own panels only: the analysis panels are tested in their own files, and the
+    # screenshot tests run the whole window in a subprocess
+    w = MainWindow(Settings(), restore_layout=False, panels=("app.grid", "app.checks"))
     qtbot.addWidget(w)
     w.resize(1100, 760)
     w.show()

@@ -184,9 +184,9 @@ def test_a_panel_plugs_in_through_the_registry(qtbot, dialogs):
         def _build_docks(self, specs):
             super()._build_docks(specs + [PanelSpec("count", "Count", StateCount, tab_with="checks")])
 
-    w = Win(Settings(), restore_layout=False)
+    w = Win(Settings(), restore_layout=False, panels=("app.grid", "app.checks"))
     qtbot.addWidget(w)
-    assert [s.key for s in panel_specs()] == ["matrix", "checks"]
+    assert [s.key for s in panel_specs()][:2] == ["matrix", "checks"]
     panel = w.panels["count"]
     assert w.docks["count"].widget() is panel and panel.ws.document is w.document
     assert "Count" in [a.text() for a in w.panels_menu.actions()]
@@ -194,3 +194,27 @@ def test_a_panel_plugs_in_through_the_registry(qtbot, dialogs):
     assert panel.text() == "1 states"
     w.shutdown()
     assert panel.stopped
+
+
+def test_a_broken_panel_does_not_take_the_editor_down(qtbot, dialogs, capsys):
+    from app.main import create_application
+    from app.window import MainWindow
+
+    create_application()
+
+    def broken(ws):
+        raise RuntimeError("this panel is broken")
+
+    class Win(MainWindow):
+        def _build_docks(self, specs):
+            super()._build_docks(specs + [PanelSpec("broken", "Broken", broken)])
+
+    w = Win(Settings(), restore_layout=False, panels=("app.grid", "no_such_module_here"))
+    qtbot.addWidget(w)
+    assert "matrix" in w.docks and "broken" not in w.docks
+    assert "this panel is broken" in w.panel_errors["broken"]
+    assert "no_such_module_here" in w.panel_errors
+    assert "could not start" in capsys.readouterr().err
+    w.document.add_state(0.0, 0.0)
+    assert w.canvas.states
+    w.shutdown()
