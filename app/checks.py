@@ -87,5 +87,5 @@ class ChecksPanel(QWidget):
 
 PANELS = [
     PanelSpec("checks", "Checks", ChecksPanel, area=Qt.DockWidgetArea.BottomDockWidgetArea,
-              beside="matrix", shortcut="Ctrl+Shift+K"),
+              tab_with="matrix", shortcut="Ctrl+Shift+K"),
 ]

@@ -265,7 +265,11 @@ class MainWindow(QMainWindow):
 
     def _build_status(self) -> None:
         sb = self.statusBar()
-        self.validity_label = QLabel("Checking…")
+        self.validity_label = QToolButton()
+        self.validity_label.setText("Checking…")
+        self.validity_label.setAutoRaise(True)
+        self.validity_label.setCursor(Qt.CursorShape.PointingHandCursor)
+        self.validity_label.clicked.connect(self.show_checks)
         self.validity_label.setObjectName("validityLabel")
         self.structure_label = QLabel("")
         self.structure_label.setObjectName("structureLabel")
@@ -320,8 +324,7 @@ class MainWindow(QMainWindow):
             self.panels[spec.key] = widget
         if "matrix" in self.docks:
             self.resizeDocks([self.docks["matrix"]], [240], Qt.Orientation.Vertical)
-        if "matrix" in self.docks and "checks" in self.docks:
-            self.resizeDocks([self.docks["matrix"], self.docks["checks"]], [700, 360], Qt.Orientation.Horizontal)
+            self.docks["matrix"].raise_()
         self._arrange_analysis_docks()
 
     def _arrange_analysis_docks(self) -> None:
@@ -336,6 +339,13 @@ class MainWindow(QMainWindow):
         self.docks["longrun"].raise_()
 
     # -- status -------------------------------------------------------------------
+    def show_checks(self) -> None:
+        """Bring the Checks panel to the front (clicking the validity in the status bar)."""
+        dock = self.docks.get("checks")
+        if dock is not None:
+            dock.show()
+            dock.raise_()
+
     def _autosave_failed(self, message: str) -> None:
         self.show_message(f"Autosave failed: {message}")
 
