@@ -64,7 +64,7 @@ def run_gui(file: str | None = None, *, screenshot: str | None = None,
     elif not settings.get("session/first_run_done"):
         sample = sample_model_path()
         if sample is not None:
-            opened = win.open_path(sample, ask=False)
+            opened = win.open_path(sample, ask=False, as_copy=True)
             if opened:
                 win.show_message("Welcome! This is a sample model; File ▸ New starts an empty chain.", 15000)
     settings.set("session/first_run_done", True)

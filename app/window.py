@@ -474,8 +474,12 @@ class MainWindow(QMainWindow):
             return read_matrix_csv(p)
         return load_chain(p)
 
-    def open_path(self, path: str | os.PathLike, *, ask: bool = True) -> bool:
-        """Open a chain file (or import a matrix CSV); False when nothing changed."""
+    def open_path(self, path: str | os.PathLike, *, ask: bool = True, as_copy: bool = False) -> bool:
+        """Open a chain file (or import a matrix CSV); False when nothing changed.
+
+        With ``as_copy`` the chain opens untitled (Save asks where), as the
+        sample model does, so the original file is never overwritten.
+        """
         p = Path(path)
         try:
             chain = self.load_file(p)
@@ -490,11 +494,12 @@ class MainWindow(QMainWindow):
         if ask and not self.maybe_save():
             return False
         is_csv = p.suffix.lower() in CSV_SUFFIXES
-        self.document.reset(chain, None if is_csv else p)
+        untitled = is_csv or as_copy
+        self.document.reset(chain, None if untitled else p)
         self.document.set_selection()
-        if not is_csv:
+        if not untitled:
             self.settings.add_recent(p)
-        self._remember_folder(p)
+            self._remember_folder(p)
         self.canvas.fit_to_view()
         n = chain.n
         what = "Imported" if is_csv else "Opened"
