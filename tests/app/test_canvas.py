@@ -326,3 +326,16 @@ def test_quick_drawing_while_dragging_defers_the_neighbours_tidying(window, qtbo
     # the loop now avoids the arrow to b, which leaves a straight upwards (angle -pi/2)
     assert abs(math.remainder(after + math.pi / 2, 2 * math.pi)) > math.radians(60)
     assert canvas.renderHints() & QPainter.RenderHint.Antialiasing
+
+
+def test_pinch_zooms(window, qtbot):
+    from PySide6.QtGui import QNativeGestureEvent, QPointingDevice
+
+    two_state_doc(window)
+    canvas = window.canvas
+    z0 = canvas.zoom
+    p = QPointF(300, 300)
+    ev = QNativeGestureEvent(Qt.NativeGestureType.ZoomNativeGesture, QPointingDevice.primaryPointingDevice(), 2,
+                             p, p, p, 0.5, QPointF(0, 0))
+    assert canvas.viewportEvent(ev)
+    assert canvas.zoom == pytest.approx(z0 * 1.5)
