@@ -167,7 +167,7 @@ class StateItem(QGraphicsItem):
 
     # geometry ------------------------------------------------------------------
     def _measure(self) -> None:
-        fm = QFontMetricsF(self.canvas.name_font)
+        fm = self.canvas.name_metrics
         text = fm.elidedText(self.name, Qt.TextElideMode.ElideRight, 170.0)
         self._shown_name = text
         w = fm.horizontalAdvance(text) + 10
@@ -382,7 +382,7 @@ class ArrowItem(QGraphicsItem):
 
     # geometry ------------------------------------------------------------------------
     def _relabel(self) -> None:
-        fm = QFontMetricsF(self.canvas.italic_font if self._rare else self.canvas.label_font)
+        fm = self.canvas.italic_metrics if self._rare else self.canvas.label_metrics
         w = fm.horizontalAdvance(self._text) + 8
         h = fm.height() + 2
         c = self._label_center if hasattr(self, "_label_center") else QPointF()
@@ -415,7 +415,7 @@ class ArrowItem(QGraphicsItem):
             path.cubicTo(QPointF(*q1), QPointF(*q2), QPointF(*base))
             mid = (0.125 * p1[0] + 0.375 * q1[0] + 0.375 * q2[0] + 0.125 * tip[0],
                    0.125 * p1[1] + 0.375 * q1[1] + 0.375 * q2[1] + 0.125 * tip[1])
-            fm = QFontMetricsF(self.canvas.label_font)
+            fm = self.canvas.label_metrics
             half = 0.5 * abs(u[0]) * (fm.horizontalAdvance(self._text) + 8) + 0.5 * abs(u[1]) * (fm.height() + 2)
             label = (mid[0] + u[0] * (half + 3), mid[1] + u[1] * (half + 3))
         else:
@@ -724,6 +724,9 @@ class ChainCanvas(QGraphicsView):
         self.badge_font = pal.ui_font(-1.0, bold=True)
         self.label_font = pal.ui_font(-1.0)
         self.italic_font = pal.ui_font(-1.0, italic=True)
+        self.name_metrics = QFontMetricsF(self.name_font)
+        self.label_metrics = QFontMetricsF(self.label_font)
+        self.italic_metrics = QFontMetricsF(self.italic_font)
         self._scene = QGraphicsScene(self)
         self._scene.setItemIndexMethod(QGraphicsScene.ItemIndexMethod.BspTreeIndex)
         self.setScene(self._scene)
