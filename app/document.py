@@ -95,8 +95,12 @@ class ChainEdit(QUndoCommand):
             return False
         self.after = other.after
         self.setText(other.text())
+        # Qt deletes ``other`` (and an obsolete ``self``) on the C++ side, but PySide keeps
+        # their Python wrappers until the stack is cleared: let them hold no chains.
+        other.before = other.after = None
         if self.after is self.before or self.after == self.before:
             self.setObsolete(True)
+            self.before = self.after = None
         return True
 
 
@@ -223,7 +227,32 @@ class Document(QObject):
             self._macro.steps.append((before, after, text))
             self._chain = after  # silent; the macro's push notifies once
             return True
+        if merge is not None and self._merge_in_place(after, text, merge):
+            return True
         self.undo_stack.push(ChainEdit(self, before, after, text, merge=merge))
+        return True
+
+    def _merge_in_place(self, after: Chain, text: str, merge: Any) -> bool:
+        """Extend the top undo step of a drag instead of pushing a command for Qt to merge.
+
+        Qt deletes a merged command on the C++ side while PySide keeps its Python
+        wrapper alive until the stack is cleared: one leaked command per mouse move.
+        Merging here makes no command.  The cases Qt treats specially (a redo tail
+        to drop, the top step at the saved state, a drag back to where it began,
+        which removes the step) still go through ``QUndoStack.push``.
+        """
+        st = self.undo_stack
+        i = st.index()
+        if i == 0 or i != st.count() or i == st.cleanIndex():
+            return False
+        top = st.command(i - 1)
+        if not isinstance(top, ChainEdit) or top.merge is None or top.merge != merge:
+            return False
+        if after is top.before or after == top.before:
+            return False
+        top.after = after
+        top.setText(text)
+        self._set_chain(after)
         return True
 
     @contextlib.contextmanager
