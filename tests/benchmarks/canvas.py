@@ -13,7 +13,11 @@ Prints, in one run, for a window of 1400x900 (offscreen):
    while they move);
    the edits join states that are on screen, so each one is repainted;
 3. the time until the background validation has marked the new arrow (not
-   blocking: the GUI thread stays free meanwhile), and one full repaint.
+   blocking: the GUI thread stays free meanwhile), and one full repaint;
+
+once for a window with the editor's own panels and once with every panel
+(the analysis panels listen to the same document and run their own jobs in
+the analysis worker, which competes with the GUI thread for the interpreter).
 
 Run: ``QT_QPA_PLATFORM=offscreen .venv/bin/python tests/benchmarks/canvas.py``.
 """
@@ -118,6 +122,16 @@ def measure(app, win, watch, label: str) -> dict:
     return {"label": label, "add": adds, "move": moves}
 
 
+def centre_on_densest(win) -> None:
+    """Centre the view where the most states fit on screen."""
+    c = win.canvas
+    vp = c.viewport().rect()
+    w, h = vp.width() / c.zoom * 0.9, vp.height() / c.zoom * 0.9
+    pts = [(it.pos().x(), it.pos().y()) for it in c.states.values()]
+    best = max(pts, key=lambda p: sum(abs(x - p[0]) < w / 2 and abs(y - p[1]) < h / 2 for x, y in pts))
+    c.centerOn(*best)
+
+
 def report(row: dict) -> None:
     for kind in ("add", "move"):
         xs = sorted(row[kind])
@@ -130,15 +144,23 @@ def report(row: dict) -> None:
 
 def main() -> int:
     app = create_application()
-    win = MainWindow(Settings(), autosave=False, restore_layout=False)
-    try:
-        return run(app, win)
-    finally:
-        win.shutdown()
-        win.close()
+    worst = []
+    for label, panels in (("the editor's own panels (matrix, checks)", ("app.grid", "app.checks")),
+                          ("every panel (long run, simulation, plan check, findings too)", None)):
+        print(f"\n== window with {label}")
+        win = MainWindow(Settings(), autosave=False, restore_layout=False, panels=panels)
+        try:
+            worst.append(run(app, win))
+        finally:
+            win.shutdown()
+            win.close()
+            app.processEvents()
+    print(f"\nworst p95 add+repaint / {TARGET_MS:.0f} ms target: editor panels {worst[0]:.2f}, "
+          f"every panel {worst[1]:.2f}")
+    return 0
 
 
-def run(app, win) -> int:
+def run(app, win) -> float:
     win.resize(1400, 900)
     win.show()
     watch = PaintWatch()
@@ -156,8 +178,8 @@ def run(app, win) -> int:
     first_analysis = (time.perf_counter() - t0) * 1000
     print(f"Canvas benchmark: {N} states, {len(chain.transitions)} transitions, window 1400x900 "
           f"({os.environ['QT_QPA_PLATFORM']})")
-    print(f"  scene built from scratch in {build:.0f} ms; first background validation + classes "
-          f"{first_analysis:.0f} ms later")
+    print(f"  scene built from scratch in {build:.0f} ms; first background analysis (validation, classes "
+          f"and the panels' jobs, off the GUI thread) {first_analysis:.0f} ms later")
 
     win.canvas.fit_to_view()
     app.processEvents()
@@ -166,14 +188,14 @@ def run(app, win) -> int:
     full_fit = (time.perf_counter() - t0) * 1000
     rows = [measure(app, win, watch, f"fit ({win.canvas.zoom * 100:.0f} %)")]
     win.canvas.set_zoom(0.5)
-    win.canvas.centerOn(win.canvas.states["s0"].pos())
+    centre_on_densest(win)
     app.processEvents()
     t0 = time.perf_counter()
     win.canvas.viewport().repaint()
     full_100 = (time.perf_counter() - t0) * 1000
     rows.append(measure(app, win, watch, "zoom 50 %"))
     win.canvas.set_zoom(1.0)
-    win.canvas.centerOn(win.canvas.states["s0"].pos())
+    centre_on_densest(win)
     app.processEvents()
     rows.append(measure(app, win, watch, "zoom 100 %"))
     for row in rows:
@@ -194,7 +216,7 @@ def run(app, win) -> int:
           "(includes the 150 ms debounce; computed off the GUI thread)")
     worst = max(sorted(r['add'])[int(0.95 * (len(r['add']) - 1))] for r in rows)
     print(f"  worst p95 add+repaint / target = {worst / TARGET_MS:.2f}  ({'met' if worst <= TARGET_MS else 'MISSED'})")
-    return 0
+    return worst / TARGET_MS
 
 
 if __name__ == "__main__":
