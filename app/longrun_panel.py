@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 import pyqtgraph as pg
@@ -42,7 +41,7 @@ from PySide6.QtWidgets import (
 
 from . import palette as pal
 from .panels import PanelSpec, Workspace
-from .plan_form import PlanFields, fmt_p, preload_core, shared_plan
+from .plan_form import PlanFields, fmt_p, preload_core, shared_plan, table_filling
 from .plot_export import ChartBox, nice_upper, state_ticks
 
 __all__ = ["LongRunPanel", "split_time", "steps_text", "PANELS", "JOB", "INTERVAL_JOB", "INTERVAL_DRAWS"]
@@ -118,6 +117,7 @@ def _table(columns: list[str], name: str) -> QTableWidget:
     t.setSelectionBehavior(QTableWidget.SelectionBehavior.SelectRows)
     t.setAlternatingRowColors(True)
     t.setWordWrap(False)
+    t.verticalHeader().setDefaultSectionSize(t.fontMetrics().height() + 8)
     hh = t.horizontalHeader()
     hh.setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
     hh.setStretchLastSection(True)
@@ -383,7 +383,6 @@ class LongRunPanel(QWidget):
             return
         s = r.structure
         step = r.step
-        ids = r.ids
         iv = self._intervals()
         self.title.setText(f"Long run of “{r.name}”" if r.name else "Long run")
         closed_rank = {ci: k for k, ci in enumerate(s.closed)}
@@ -409,6 +408,38 @@ class LongRunPanel(QWidget):
         self.summary.setText(text + unit)
 
         # classes
+        with table_filling(self.classes):
+            self._fill_classes(r, closed_rank)
+        _fit_height(self.classes)
+        order: list[tuple[int, int]] = []  # (state, closed rank)
+        for k, ci in enumerate(s.closed):
+            for i in s.classes[ci].states:
+                order.append((i, k))
+        with table_filling(self.laws):
+            self._fill_laws(r, chain, order, iv)
+        _fit_height(self.laws)
+        self._chart_laws(r, order, iv)
+        T = s.transient_states
+        self.absorb.setVisible(bool(T))
+        self.absorb_title.setVisible(bool(T))
+        if T:
+            cols = ["From"] + [f"ends in C{k + 1}" for k in range(ncl)] + ["Expected steps to a closed class",
+                                                                          "in real time"]
+            self.absorb.setColumnCount(len(cols))
+            self.absorb.setHorizontalHeaderLabels(cols)
+            with table_filling(self.absorb):
+                self._fill_absorb(r, chain, iv)
+            _fit_height(self.absorb)
+            self.absorb_note.setText("Each transient state is left for good sooner or later; the columns give the "
+                                     "probability of ending in each closed class and the expected steps until "
+                                     "then.")
+        else:
+            self.absorb_note.setText("")
+        self._show_times(r, iv)
+
+    def _fill_classes(self, r, closed_rank) -> None:
+        s = r.structure
+        ids = r.ids
         t = self.classes
         t.setRowCount(len(s.classes))
         for row, cls in enumerate(s.classes):
@@ -433,13 +464,11 @@ class LongRunPanel(QWidget):
             t.setItem(row, 1, _cell(kind))
             t.setItem(row, 2, _cell(per))
             t.setItem(row, 3, _cell(names, tip=tip or ", ".join(ids[i] for i in cls.states)))
-        _fit_height(t)
 
-        # stationary laws
-        order: list[tuple[int, int]] = []  # (state, closed rank)
-        for k, ci in enumerate(s.closed):
-            for i in s.classes[ci].states:
-                order.append((i, k))
+    def _fill_laws(self, r, chain, order, iv) -> None:
+        s = r.structure
+        ids = r.ids
+        step = r.step
         t = self.laws
         t.setRowCount(len(order))
         for row, (i, k) in enumerate(order):
@@ -455,42 +484,33 @@ class LongRunPanel(QWidget):
             t.setItem(row, 2, _cell(share_txt, right=True))
             t.setItem(row, 3, _cell(ret_steps, right=True))
             t.setItem(row, 4, _cell(ret_time))
-        _fit_height(t)
-        self._chart_laws(r, order, iv)
 
-        # absorption
+    def _fill_absorb(self, r, chain, iv) -> None:
+        s = r.structure
+        ids = r.ids
+        step = r.step
+        ncl = len(s.closed)
         T = s.transient_states
-        self.absorb.setVisible(bool(T))
-        self.absorb_title.setVisible(bool(T))
-        if T:
-            cols = ["From"] + [f"ends in C{k + 1}" for k in range(ncl)] + ["Expected steps to a closed class",
-                                                                          "in real time"]
-            t = self.absorb
-            t.setColumnCount(len(cols))
-            t.setHorizontalHeaderLabels(cols)
-            t.setRowCount(len(T))
-            names = ["+".join(ids[j] for j in s.classes[ci].states) for ci in s.closed]
-            for row, i in enumerate(T):
-                t.setItem(row, 0, _cell(ids[i], tip=chain.states[i].display_name))
-                for m in range(ncl):
-                    p = r.absorption.probabilities[i, m]
-                    lo_hi = iv["absorption"].get((ids[i], names[m]))
-                    t.setItem(row, 1 + m, _cell(fmt_p(p) + ("  " + _interval_text(*lo_hi) if lo_hi else ""),
-                                                right=True))
-                e = r.absorption.expected_steps[i]
-                lo_hi = iv["expected_steps"].get(ids[i])
-                e_steps, e_time = split_time(e, step)
-                t.setItem(row, 1 + ncl, _cell(e_steps + ("  " + _interval_text(*lo_hi, kind="n") if lo_hi else ""),
-                                              right=True))
-                t.setItem(row, 2 + ncl, _cell(e_time))
-            _fit_height(t)
-            self.absorb_note.setText("Each transient state is left for good sooner or later; the columns give the "
-                                     "probability of ending in each closed class and the expected steps until "
-                                     "then.")
-        else:
-            self.absorb_note.setText("")
+        t = self.absorb
+        t.setRowCount(len(T))
+        names = ["+".join(ids[j] for j in s.classes[ci].states) for ci in s.closed]
+        for row, i in enumerate(T):
+            t.setItem(row, 0, _cell(ids[i], tip=chain.states[i].display_name))
+            for m in range(ncl):
+                p = r.absorption.probabilities[i, m]
+                lo_hi = iv["absorption"].get((ids[i], names[m]))
+                t.setItem(row, 1 + m, _cell(fmt_p(p) + ("  " + _interval_text(*lo_hi) if lo_hi else ""),
+                                            right=True))
+            e = r.absorption.expected_steps[i]
+            lo_hi = iv["expected_steps"].get(ids[i])
+            e_steps, e_time = split_time(e, step)
+            t.setItem(row, 1 + ncl, _cell(e_steps + ("  " + _interval_text(*lo_hi, kind="n") if lo_hi else ""),
+                                          right=True))
+            t.setItem(row, 2 + ncl, _cell(e_time))
 
-        # times
+    def _show_times(self, r, iv) -> None:
+        s = r.structure
+        step = r.step
         mx = r.mixing
         if mx.steps is not None:
             txt = steps_text(mx.steps, step)

@@ -23,6 +23,7 @@ and results of a superseded request are dropped.
 """
 from __future__ import annotations
 
+import contextlib
 import math
 import threading
 import traceback
@@ -58,6 +59,7 @@ from core.errors import LongrunError
 
 from . import palette as pal
 from .panels import PanelSpec, Workspace
+from .simulation_worker import SIM_MAX_REPLICATES, SIM_MAX_STEPS, PlanValues, ResolvedPlan, resolve_plan
 
 __all__ = [
     "PlanValues",
@@ -77,10 +79,6 @@ __all__ = [
     "PANELS",
 ]
 
-#: Largest run length and burn-in the live simulation accepts (core.simulate.MAX_STEPS).
-SIM_MAX_STEPS = 10**12
-#: Largest number of replicates (core.simulate.MAX_REPLICATES).
-SIM_MAX_REPLICATES = 10**6
 #: Speed presets: (label, steps per second or None for as fast as possible).
 SPEEDS: tuple[tuple[str, float | None], ...] = (
     ("As fast as possible", None),
@@ -324,50 +322,6 @@ class BackgroundJob(QObject):
 # ---------------------------------------------------------------------------
 # the plan values and the shared model
 # ---------------------------------------------------------------------------
-@dataclass(frozen=True)
-class PlanValues:
-    """Every field of a simulation plan (immutable; :class:`RunPlan` holds the current one).
-
-    Attributes
-    ----------
-    start : tuple
-        ``("state", id)`` (``id`` None: the first state), ``("uniform",)`` or
-        ``("stationary", k)`` (the stationary law of the k-th closed class).
-    replicates, steps, burn_in, stride : int
-        ``R``, ``T``, ``B``, ``s`` of the run convention.
-    estimator : {"final", "average"}
-    tolerance : float
-        Largest acceptable total variation distance (plan check and the
-        simulation's verdict).
-    seed : int
-    speed : float or None
-        Steps per second of the live run; None: as fast as possible.
-    epsilon : float
-        Threshold of the mixing time (long-run panel, findings).
-    """
-
-    start: tuple = ("state", None)
-    replicates: int = 1000
-    steps: int = 1000
-    burn_in: int = 0
-    stride: int = 1
-    estimator: str = "final"
-    tolerance: float = 0.05
-    seed: int = 1
-    speed: float | None = None
-    epsilon: float = 0.25
-
-    #: The fields that change what a run computes (not speed).
-    RUN_FIELDS = ("start", "replicates", "steps", "burn_in", "stride", "seed")
-
-    def run_key(self) -> tuple:
-        return tuple(getattr(self, f) for f in self.RUN_FIELDS)
-
-    def check_key(self) -> tuple:
-        return (self.start, self.replicates, self.steps, self.burn_in, self.stride, self.estimator,
-                self.tolerance)
-
-
 class RunPlan(QObject):
     """The one plan every panel reads and edits.
 
@@ -435,99 +389,6 @@ def shared_plan(workspace: Workspace) -> RunPlan:
         rp = RunPlan(workspace.document)
         workspace.run_plan = rp
     return rp
-
-
-# ---------------------------------------------------------------------------
-# resolving a plan against a chain (runs in workers)
-# ---------------------------------------------------------------------------
-@dataclass(frozen=True, eq=False)
-class ResolvedPlan:
-    """A :class:`PlanValues` made concrete for one chain.
-
-    Attributes
-    ----------
-    plan : core.plan.Plan or None
-        None when the values do not make a valid run (``error`` says why).
-    sim_start : int, str or ndarray
-        The ``start`` argument of :class:`core.simulate.ReplicateSimulation`.
-    start_law : (n,) ndarray
-    start_index : int or None
-    start_text : str
-    error : str or None
-    """
-
-    values: PlanValues
-    plan: Any
-    sim_start: Any
-    start_law: np.ndarray | None
-    start_index: int | None
-    start_text: str
-    error: str | None = None
-
-
-def _closed_laws(P, structure):
-    from core.stationary import stationary_laws
-
-    return stationary_laws(P, structure)
-
-
-def resolve_plan(chain, values: PlanValues, P=None, structure=None) -> ResolvedPlan:
-    """Turn ``values`` into a core plan and a simulation start for ``chain`` (valid)."""
-    from core.errors import OptionError
-    from core.plan import Plan
-
-    n = chain.n
-    if n == 0:
-        return ResolvedPlan(values, None, None, None, None, "", "the chain has no states")
-    kind = values.start
-    start_index = None
-    if kind[0] == "uniform":
-        law = np.full(n, 1.0 / n)
-        sim_start: Any = "uniform"
-        plan_start: Any = law
-        text = f"uniform over the {n} states"
-    elif kind[0] == "stationary":
-        if P is None:
-            P = chain.matrix()
-        if structure is None:
-            from core.structure import classify
-
-            structure = classify(P)
-        k = int(kind[1] or 0)
-        laws = _closed_laws(P, structure)
-        if not 0 <= k < len(laws):
-            k = 0
-        law = np.asarray(laws[k], dtype=float)
-        sim_start = law
-        plan_start = law
-        cls = structure.classes[structure.closed[k]]
-        text = f"the stationary law of closed class C{k + 1} ({len(cls.states)} state{'s' if len(cls.states) != 1 else ''})"
-        nz = np.flatnonzero(law)
-        if nz.size == 1:
-            start_index = int(nz[0])
-    else:
-        sid = kind[1]
-        i = chain.index.get(sid, 0) if sid is not None else 0
-        start_index = i
-        law = np.zeros(n)
-        law[i] = 1.0
-        sim_start = i
-        plan_start = i
-        text = f"state '{chain.ids[i]}'"
-    if values.stride > values.steps:
-        return ResolvedPlan(values, None, sim_start, law, start_index, text,
-                            f"stride ({values.stride:,}) must be at most the steps T ({values.steps:,}): the time "
-                            "average keeps floor(T / stride) draws after the burn-in, and none would be kept")
-    if values.burn_in + values.steps > SIM_MAX_STEPS:
-        return ResolvedPlan(values, None, sim_start, law, start_index, text,
-                            f"burn-in + steps ({values.burn_in:,} + {values.steps:,}) must be at most "
-                            f"{SIM_MAX_STEPS:.0e} for a simulation")
-    try:
-        plan = Plan(plan_start, values.steps, burn_in=values.burn_in, stride=values.stride,
-                    replicates=values.replicates, estimator=values.estimator, tolerance=values.tolerance)
-    except OptionError as exc:
-        return ResolvedPlan(values, None, sim_start, law, start_index, text, str(exc))
-    return ResolvedPlan(values, plan, sim_start, law, start_index, text)
 
 
 @dataclass(frozen=True, eq=False)
@@ -890,6 +751,22 @@ def fmt_signed(x: float) -> str:
     return f"{x:+.4g}"
 
 
+@contextlib.contextmanager
+def table_filling(table: QTableWidget):
+    """Fill ``table`` in one go: sizes to contents are computed once at the end, not per cell."""
+    hh = table.horizontalHeader()
+    modes = [hh.sectionResizeMode(c) for c in range(table.columnCount())]
+    table.setUpdatesEnabled(False)
+    for c in range(table.columnCount()):
+        hh.setSectionResizeMode(c, QHeaderView.ResizeMode.Interactive)
+    try:
+        yield table
+    finally:
+        for c in range(table.columnCount()):
+            hh.setSectionResizeMode(c, modes[c] if c < len(modes) else QHeaderView.ResizeMode.ResizeToContents)
+        table.setUpdatesEnabled(True)
+
+
 def verdict_badge(label: QLabel, kind: str, text: str) -> None:
     """Style ``label`` as a verdict badge: ``"good"``, ``"bad"``, ``"warn"`` or ``"idle"``."""
     colours = {
@@ -988,6 +865,7 @@ class PlanForm(QWidget):
         self.table.setEditTriggers(QTableWidget.EditTrigger.NoEditTriggers)
         self.table.setSelectionMode(QTableWidget.SelectionMode.NoSelection)
         self.table.setAlternatingRowColors(True)
+        self.table.verticalHeader().setDefaultSectionSize(self.table.fontMetrics().height() + 8)
         hh = self.table.horizontalHeader()
         hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
         for c in range(1, 5):
@@ -1126,9 +1004,17 @@ class PlanForm(QWidget):
         self._set_buttons(out)
 
     def _fill_table(self, out: PlanCheckOutcome) -> None:
+        n = len(out.chain.ids)
+        with table_filling(self.table):
+            self._fill_rows(out, n)
+        rows = min(n, 8)
+        h = self.table.horizontalHeader().height() + 4
+        h += sum(self.table.rowHeight(r) for r in range(rows)) if rows else 0
+        self.table.setFixedHeight(max(h, 60))
+
+    def _fill_rows(self, out: PlanCheckOutcome, n: int) -> None:
         c = out.check
         ids = out.chain.ids
-        n = len(ids)
         self.table.setRowCount(n)
         big = int(np.argmax(np.abs(c.bias))) if n else -1
         for i in range(n):
@@ -1146,10 +1032,6 @@ class PlanForm(QWidget):
             label = out.chain.states[i].display_name
             if label != ids[i]:
                 self.table.item(i, 0).setToolTip(label)
-        rows = min(n, 8)
-        h = self.table.horizontalHeader().height() + 4
-        h += sum(self.table.rowHeight(r) for r in range(rows)) if rows else 0
-        self.table.setFixedHeight(max(h, 60))
 
     def _fill_chart(self, out: PlanCheckOutcome) -> None:
         from .plot_export import finite_positive, log_ticks

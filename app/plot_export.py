@@ -23,7 +23,8 @@ import pyqtgraph as pg
 import pyqtgraph.exporters  # noqa: F401  (registers the exporters)
 from PySide6.QtCore import QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QAction, QColor, QPainter, QPen, QPixmap
-from PySide6.QtWidgets import QHBoxLayout, QLabel, QMenu, QSizePolicy, QToolButton, QVBoxLayout, QWidget
+from PySide6.QtWidgets import (QGraphicsItem, QHBoxLayout, QLabel, QMenu, QSizePolicy, QToolButton, QVBoxLayout,
+                               QWidget)
 
 from . import dialogs
 from . import palette as pal
@@ -192,6 +193,8 @@ class ChartBox(QWidget):
     title : str
         Shown above the chart (and the default file name of an export).
     parent : QWidget, optional
+    grid : bool
+        Horizontal grid lines (off for charts redrawn many times a second).
 
     Attributes
     ----------
@@ -208,15 +211,16 @@ class ChartBox(QWidget):
 
     exported = Signal(str)
 
-    def __init__(self, title: str, parent: QWidget | None = None, *, name: str = ""):
+    def __init__(self, title: str, parent: QWidget | None = None, *, name: str = "", grid: bool = True):
         super().__init__(parent)
         self._title = title
         self.setObjectName(name or f"chart_{_plain_name(title)}")
         self.title_label = QLabel(title)
         self.title_label.setObjectName("chartTitle")
         self.title_label.setStyleSheet(f"font-weight: 600; color: {pal.INK.name()};")
-        self.title_label.setWordWrap(True)
-        self.title_label.setSizePolicy(QSizePolicy.Policy.Preferred, QSizePolicy.Policy.Minimum)
+        # one line, never wider than the chart: a live title changes without moving the chart
+        self.title_label.setWordWrap(False)
+        self.title_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
         self.legend_row = QHBoxLayout()
         self.legend_row.setContentsMargins(0, 0, 0, 0)
         self.legend_row.setSpacing(10)
@@ -239,7 +243,8 @@ class ChartBox(QWidget):
         self.item = self.plot.getPlotItem()
         self.item.setMenuEnabled(True)
         self.item.hideButtons()
-        self.item.showGrid(x=False, y=True, alpha=0.18)
+        if grid:  # (live charts go without: grid lines make the axes repaint with every frame)
+            self.item.showGrid(x=False, y=True, alpha=0.18)
         font = pal.ui_font(-1)
         for side in ("left", "bottom"):
             ax = self.item.getAxis(side)
@@ -248,6 +253,8 @@ class ChartBox(QWidget):
             ax.setTickFont(font)
             ax.label.setFont(font)
             ax.enableAutoSIPrefix(False)
+            # drawn once into a pixmap, blitted on repaints, redrawn only when its ticks change
+            ax.setCacheMode(QGraphicsItem.CacheMode.DeviceCoordinateCache)
         self.item.getAxis("left").setWidth(52)
         vb = self.item.getViewBox()
         vb.setMouseEnabled(x=False, y=False)
@@ -272,8 +279,11 @@ class ChartBox(QWidget):
 
     # -- appearance ------------------------------------------------------------------
     def set_title(self, title: str) -> None:
+        if title == self._title:
+            return
         self._title = title
         self.title_label.setText(title)
+        self.title_label.setToolTip(title)
 
     def title(self) -> str:
         return self._title

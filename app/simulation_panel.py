@@ -20,24 +20,28 @@ states kept at steps ``B, B + s, ...``.  Run, Pause, Single step and Reset
 drive the worker; its speed (steps per second or as fast as possible) can be
 changed while it runs.
 
-Threading: the worker constructs the simulation, computes the exact curves,
-then advances in chunks sized to about 15 ms of work (measured as it goes),
-sending each snapshot by a queued signal tagged with the run's id; the GUI
-keeps only the newest frame and draws it from a 25 Hz timer with ``setData``
-on plot items made once.  A frame whose run id is not the current one is
-dropped, so an edit of the chain (which stops the run, or restarts it, as set
-in the panel's menu) never mixes old and new results.  At the end the worker
-calls :func:`core.simulate.compare` and the panel shows its verdict.
+Threading: the run executes in a worker process (:mod:`app.simulation_worker`,
+so the engine never holds the GUI's interpreter lock), which constructs the
+simulation, computes the exact curves, then advances in chunks sized to about
+15 ms of work (measured as it goes).  A relay thread (:class:`SimulationThread`)
+passes the controls to it and its snapshots back as queued signals tagged with
+the run's id; the GUI keeps only the newest frame and draws it from a 25 Hz
+timer with ``setData`` on plot items made once (live charts have no grid, so
+their axes are not repainted with every frame).  A frame whose run id is not
+the current one is dropped, so an edit of the chain (which stops the run, or
+restarts it, as set in the panel's menu) never mixes old and new results.  At
+the end the worker calls :func:`core.simulate.compare` and the panel shows its
+verdict.  ``tests/benchmarks/gui_latency.py`` measures the event-loop latency
+and the refresh rate during a run of 100,000 replicates.
 """
 from __future__ import annotations
 
 import math
+import queue
 import threading
 import time
 import traceback
 import weakref
-from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 import pyqtgraph as pg
@@ -58,33 +62,24 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from core.errors import LongrunError, OptionError
+from core.errors import LongrunError
 
 from . import palette as pal
 from .analysis_service import analysis_key
 from .panels import PanelSpec, Workspace
-from .plan_form import (PlanFields, PlanValues, SIM_MAX_STEPS, fmt_p, preload_core, resolve_plan, shared_plan,
-                        verdict_badge)
+from .plan_form import PlanFields, preload_core, shared_plan, verdict_badge
+from .simulation_worker import (PATH_LENGTH, PATHS, POOL, LiveFrame, PlanValues, RunRequest, RunSetup,
+                                ThreadControl, WorkerProcess, default_mode, run_loop)
 from .plot_export import (AVG_CURVE, CURVE, EXACT, GUIDE, LONG_RUN, SIM, ChartBox, finite_positive, log_ticks,
                           nice_upper, state_ticks)
 
 __all__ = ["SimulationPanel", "SimulationThread", "RunRequest", "RunSetup", "LiveFrame", "live_simulation_threads",
            "PANELS", "PATHS", "PATH_LENGTH"]
 
-#: Sample paths recorded and shown, and how many of their last steps.
-PATHS = 4
-PATH_LENGTH = 160
-#: Work per chunk the worker aims for, seconds (cancellation and frames come between chunks).
-CHUNK_SECONDS = 0.015
-#: Frames sent to the GUI at most this often (seconds), and R-hat computed at most this often.
-FRAME_INTERVAL = 1 / 40
-RHAT_INTERVAL = 0.5
 #: Screen refresh of the plots (ms).
 REFRESH_MS = 40
 #: Most simulated points kept on the TV chart (one per 1/200 of a decade of steps).
 TV_POINTS_PER_DECADE = 200
-#: Steps per decade at which the worker measures the TV distance for the chart.
-TRACE_PER_DECADE = 100
 
 _THREADS: "weakref.WeakSet[SimulationThread]" = weakref.WeakSet()
 
@@ -95,123 +90,17 @@ def live_simulation_threads() -> list["SimulationThread"]:
 
 
 # ---------------------------------------------------------------------------
-# messages between the worker and the panel
-# ---------------------------------------------------------------------------
-@dataclass(frozen=True, eq=False)
-class RunRequest:
-    """What to run: a snapshot of the chain and of the plan, taken on the GUI thread."""
-
-    run_id: int
-    chain: Any
-    values: PlanValues
-    paused: bool = False
-    first_steps: int = 0
-
-
-@dataclass(frozen=True, eq=False)
-class RunSetup:
-    """Sent once by the worker, before the first frame: the run's exact reference values.
-
-    Attributes
-    ----------
-    ids : tuple of str
-    start_law, long_run : (n,) ndarray
-    curve_steps, curve_tv : ndarray
-        ``d_start(t) = TV(pi0 P^t, long run)`` on a log grid of ``t`` in ``0..B+T``.
-    avg_steps, avg_tv : ndarray
-        The exact TV of the time average of a run of length ``T'`` (plotted at
-        step ``B + T'``).
-    noise_floor : float
-        The TV distance a perfect sample of ``R`` replicates shows on average
-        around the long-run law.
-    """
-
-    run_id: int
-    ids: tuple
-    labels: tuple
-    values: PlanValues
-    start_text: str
-    start_law: np.ndarray
-    long_run: np.ndarray
-    total_steps: int
-    kept_planned: int
-    curve_steps: np.ndarray
-    curve_tv: np.ndarray
-    avg_steps: np.ndarray
-    avg_tv: np.ndarray
-    noise_floor: float
-    seed: int
-    notes: tuple = ()
-
-
-@dataclass(frozen=True, eq=False)
-class LiveFrame:
-    """One snapshot of the run with the exact values at its step."""
-
-    run_id: int
-    snap: Any
-    exact_now: np.ndarray
-    exact_kept: np.ndarray | None
-    tv_ensemble: float
-    tv_average: float | None
-    rhat_max: float | None
-    rate: float
-    trace: tuple = ()
-
-
-class _ExactTracker:
-    """``pi0 P^t`` and the sum of the laws at the kept steps, advanced one step at a time.
-
-    Mat-vec products (dense, or CSR for large sparse chains) in the same order
-    as the simulation's steps, so the exact values are known at every frame.
-    """
-
-    def __init__(self, P: np.ndarray, pi0: np.ndarray, burn_in: int, stride: int, kept_planned: int):
-        n = P.shape[0]
-        nnz = int(np.count_nonzero(P))
-        if n > 200 and nnz < 0.2 * n * n:
-            from scipy.sparse import csr_matrix
-
-            self._PT = csr_matrix(P.T)
-            self._mul = lambda v: self._PT @ v
-        else:
-            self._P = np.ascontiguousarray(P)
-            self._mul = lambda v: v @ self._P
-        self.v = np.array(pi0, dtype=float)
-        self.t = 0
-        self.B, self.s, self.m = burn_in, stride, kept_planned
-        self.acc = np.zeros(n)
-        self.kept = 0
-        if burn_in == 0 and kept_planned >= 1:
-            self.acc += self.v
-            self.kept = 1
-
-    def advance(self, k: int) -> None:
-        mul = self._mul
-        B, s, m = self.B, self.s, self.m
-        v, t = self.v, self.t
-        for _ in range(k):
-            v = mul(v)
-            t += 1
-            if t >= B and self.kept < m and (t - B) % s == 0:
-                self.acc += v
-                self.kept += 1
-            if t & 1023 == 0:
-                v = np.clip(v, 0.0, None)
-                v /= v.sum()
-        self.v, self.t = v, t
-
-    def kept_mean(self) -> np.ndarray | None:
-        return self.acc / self.kept if self.kept else None
-
-
-# ---------------------------------------------------------------------------
-# the worker
+# the worker thread: runs the loop in a worker process (or here) and relays its messages
 # ---------------------------------------------------------------------------
 class SimulationThread(QThread):
-    """Runs one :class:`RunRequest` with the core engine; thread-safe controls.
+    """Runs one :class:`RunRequest`; its controls are thread-safe.
 
-    Signals (emitted from the worker thread, delivered queued)
+    In ``"process"`` mode (the default) the run executes in a worker process
+    (:data:`app.simulation_worker.POOL`) and this thread relays its messages;
+    in ``"thread"`` mode the loop runs in this thread.  Either way the signals
+    are emitted from this thread and delivered queued to the GUI thread.
+
+    Signals
     -------
     setup(int, RunSetup), frame(int, LiveFrame), finished_run(int, object), failed(int, str)
         ``finished_run`` carries the :class:`core.simulate.SimulationReport`
@@ -223,218 +112,135 @@ class SimulationThread(QThread):
     finished_run = Signal(int, object)
     failed = Signal(int, str)
 
-    def __init__(self, request: RunRequest):
+    #: Seconds a cancelled run may take to stop before its worker process is killed.
+    KILL_AFTER = 3.0
+
+    def __init__(self, request: RunRequest, *, mode: str | None = None):
         super().__init__()
         self.request = request
         self.run_id = request.run_id
-        self._cond = threading.Condition()
+        self.mode = mode or default_mode()
         self._paused = bool(request.paused)
-        self._wanted = int(request.first_steps)
-        self._cancel = False
-        self._speed = request.values.speed
-        self._pace_reset = True
-        self._sim = None
+        self._cancel_at: float | None = None
+        self.worker: WorkerProcess | None = None
+        self._outbox: "queue.SimpleQueue[tuple]" = queue.SimpleQueue()
+        self._control = ThreadControl(paused=request.paused, wanted=request.first_steps,
+                                      speed=request.values.speed)
         self.setObjectName(f"longrun-simulation-{request.run_id}")
         _THREADS.add(self)
 
     # -- controls (any thread) -----------------------------------------------------
+    def _post(self, msg: tuple) -> None:
+        if self.mode == "thread":
+            self._control.send(msg)
+        else:
+            self._outbox.put(msg)
+
     def pause(self) -> None:
-        with self._cond:
-            self._paused = True
-            self._cond.notify_all()
+        self._paused = True
+        self._post(("pause",))
 
     def resume(self) -> None:
-        with self._cond:
-            self._paused = False
-            self._wanted = 0
-            self._pace_reset = True
-            self._cond.notify_all()
+        self._paused = False
+        self._post(("resume",))
 
     def step(self, k: int = 1) -> None:
         """Pause (if running) and advance ``k`` more steps."""
-        with self._cond:
-            self._paused = True
-            self._wanted += max(1, int(k))
-            self._cond.notify_all()
+        self._paused = True
+        self._post(("step", max(1, int(k))))
 
     def set_speed(self, speed: float | None) -> None:
-        with self._cond:
-            self._speed = speed
-            self._pace_reset = True
-            self._cond.notify_all()
+        self._post(("speed", speed))
 
     def cancel(self) -> None:
-        with self._cond:
-            self._cancel = True
-            self._cond.notify_all()
-        sim = self._sim
-        if sim is not None:
-            sim.cancel()
+        if self._cancel_at is None:
+            self._cancel_at = time.monotonic()
+        self._post(("cancel",))
 
     @property
     def paused(self) -> bool:
-        with self._cond:
-            return self._paused
+        return self._paused
 
     # -- the run ------------------------------------------------------------------------
     def run(self) -> None:  # noqa: D401 - QThread's entry point
         rid = self.run_id
+        if self.mode == "thread":
+            try:
+                run_loop(self.request, self._emit, self._control)
+            except LongrunError as exc:
+                self.failed.emit(rid, str(exc))
+            except MemoryError:
+                self.failed.emit(rid, "not enough memory for this run; use fewer replicates")
+            except Exception:  # a bug must not take the app down; it is shown in the panel
+                self.failed.emit(rid, "internal error:\n" + traceback.format_exc(limit=8))
+            return
         try:
-            self._run()
-        except LongrunError as exc:
-            self.failed.emit(rid, str(exc))
-        except MemoryError:
-            self.failed.emit(rid, "not enough memory for this run; use fewer replicates")
-        except Exception:  # a bug must not take the app down; it is shown in the panel
-            self.failed.emit(rid, "internal error:\n" + traceback.format_exc(limit=8))
-
-    def _run(self) -> None:
-        from core.evolution import PowerLadder, tv_curve, tv_distance
-        from core.passage import limit_law
-        from core.plan import Plan, bias_curve
-        from core.simulate import ReplicateSimulation, compare, curve_grid
-        from core.structure import classify
-
-        req = self.request
-        rid = req.run_id
-        chain = req.chain
-        v = req.values
-        if not chain.is_valid:
-            raise OptionError("the chain has problems (see Checks); fix them to simulate")
-        P = chain.matrix()
-        st = classify(P)
-        res = resolve_plan(chain, v, P, st)
-        if res.error:
-            raise OptionError(res.error)
-        sim = ReplicateSimulation(P, replicates=v.replicates, steps=v.steps, start=res.sim_start,
-                                  burn_in=v.burn_in, stride=v.stride, seed=v.seed, paths=PATHS,
-                                  path_length=PATH_LENGTH)
-        self._sim = sim
-        if self._cancelled():
+            worker = POOL.acquire()
+        except (OSError, RuntimeError, ValueError) as exc:
+            self.failed.emit(rid, f"the simulation engine could not start: {exc}")
             return
-        pi0 = np.asarray(sim.start, dtype=float)
-        long_run = limit_law(P, pi0, st)
-        total = sim.total_steps
-        ladder = PowerLadder(P)
-        grid = curve_grid(total, 90)
-        d_start = tv_curve(ladder, pi0, grid.tolist(), target=long_run)
-        s = sim.stride
-        Ts = np.unique(np.round(np.geomspace(s, max(s, sim.steps), 70)).astype(np.int64))
-        Ts = Ts[(Ts >= s) & (Ts <= sim.steps)]
-        avg_plan = Plan(pi0, max(s, 1), burn_in=sim.burn_in, stride=s, replicates=sim.replicates,
-                        estimator="average")
-        avg_tv = bias_curve(P, avg_plan, Ts.tolist()) if Ts.size else np.zeros(0)
-        R = sim.replicates
-        floor = float(np.sqrt(np.clip(long_run * (1 - long_run), 0, None) / (2 * np.pi * R)).sum())
-        notes = []
-        reached = [k for k in st.closed if long_run[list(st.classes[k].states)].sum() > 0]
-        if len(reached) > 1:
-            notes.append(f"{len(reached)} closed classes can be reached: each replicate settles in one of them")
-        per = [st.classes[k].period for k in reached if (st.classes[k].period or 1) > 1]
-        if per:
-            notes.append(f"period {max(per)}: the law at step t keeps cycling; only the time average settles")
-        self.setup.emit(rid, RunSetup(
-            run_id=rid, ids=chain.ids, labels=tuple(x.display_name for x in chain.states), values=v,
-            start_text=res.start_text, start_law=pi0, long_run=long_run, total_steps=total,
-            kept_planned=sim.kept_planned, curve_steps=grid, curve_tv=d_start, avg_steps=sim.burn_in + Ts,
-            avg_tv=avg_tv, noise_floor=floor, seed=sim.seed, notes=tuple(notes)))
-        tracker = _ExactTracker(P, pi0, sim.burn_in, s, sim.kept_planned)
+        self.worker = worker
+        self._relay(worker)
 
-        trace: list[tuple] = []
-
-        def observe(snap) -> tuple[float, float | None]:
-            avg = snap.time_average
-            tv_e = tv_distance(snap.ensemble_share, long_run)
-            tv_a = None if avg is None else tv_distance(avg, long_run)
-            trace.append((snap.step, tv_e, sim.burn_in + snap.kept * s if snap.kept else 0, tv_a))
-            return tv_e, tv_a
-
-        def send(snap, rate, rhat):
-            if not trace or trace[-1][0] != snap.step:
-                tv_e, tv_a = observe(snap)
-            else:
-                tv_e, tv_a = trace[-1][1], trace[-1][3]
-            self.frame.emit(rid, LiveFrame(
-                run_id=rid, snap=snap, exact_now=tracker.v.copy(), exact_kept=tracker.kept_mean(),
-                tv_ensemble=tv_e, tv_average=tv_a, rhat_max=rhat, rate=rate, trace=tuple(trace)))
-            trace.clear()
-
-        send(sim.snapshot(), 0.0, None)
-        next_trace = 1
-        per_step = None
-        last_emit = last_rhat = 0.0
-        rhat = None
-        ref_time, ref_step = time.monotonic(), 0
-        while not sim.done:
-            with self._cond:
-                while not self._cancel and self._paused and self._wanted == 0:
-                    self._cond.wait(0.5)
-                if self._cancel:
+    def _relay(self, worker: WorkerProcess) -> None:
+        rid = self.run_id
+        conn = worker.conn
+        healthy = True
+        try:
+            conn.send(("run", self.request))
+            while True:
+                while True:
+                    try:
+                        msg = self._outbox.get_nowait()
+                    except queue.Empty:
+                        break
+                    conn.send(msg)
+                if conn.poll(0.02):
+                    kind, mid, payload = conn.recv()
+                    if mid != rid:
+                        continue
+                    if kind == "done":
+                        break
+                    self._emit(kind, payload)
+                elif not worker.alive():
+                    healthy = False
+                    self._lost(worker)
                     break
-                stepping = self._paused and self._wanted > 0
-                speed = self._speed
-                if self._pace_reset:
-                    ref_time, ref_step = time.monotonic(), sim.t
-                    self._pace_reset = False
-            remaining = total - sim.t
-            budget = 1 if per_step is None else max(1, int(CHUNK_SECONDS / per_step))
-            if next_trace > sim.t:  # stop at the log-spaced steps of the TV chart
-                budget = min(budget, next_trace - sim.t)
-            if stepping:
-                with self._cond:
-                    k = min(self._wanted, remaining, budget)
-                    self._wanted -= k
-            elif speed is None:
-                k = min(budget, remaining)
-            else:
-                now = time.monotonic()
-                due = ref_step + int((now - ref_time) * speed) - sim.t
-                if due <= 0:
-                    wait = (sim.t + 1 - ref_step) / speed - (now - ref_time)
-                    with self._cond:
-                        if not self._cancel and not self._pace_reset and not self._paused:
-                            self._cond.wait(min(0.05, max(0.001, wait)))
-                    continue
-                k = min(due, budget, remaining)
-            t0 = time.perf_counter()
-            sim.advance(k)
-            tracker.advance(k)
-            dt = time.perf_counter() - t0
-            ps = dt / k
-            per_step = ps if per_step is None else 0.7 * per_step + 0.3 * ps
-            if sim.t >= next_trace:
-                next_trace = _next_trace_step(sim.t)
-                if not sim.done:
-                    observe(sim.snapshot())
-            now = time.monotonic()
-            slow = speed is not None and speed <= 1 / FRAME_INTERVAL
-            if stepping or slow or sim.done or now - last_emit >= FRAME_INTERVAL:
-                if now - last_rhat >= RHAT_INTERVAL or sim.done:
-                    r = sim.running_rhat()
-                    rhat = None if r is None or not np.any(np.isfinite(r)) else float(np.nanmax(r))
-                    last_rhat = now
-                rate = R / per_step if per_step else 0.0
-                send(sim.snapshot(), rate, rhat)
-                last_emit = now
-        if self._cancelled() or not sim.done:
-            self.finished_run.emit(rid, None)
-            return
-        report = compare(sim.result(), P, ids=chain.ids, structure=st, tolerance=v.tolerance)
-        self.finished_run.emit(rid, report)
+                elif self._cancel_at is not None and time.monotonic() - self._cancel_at > self.KILL_AFTER:
+                    healthy = False  # stuck in a long step (a huge table): stop it the hard way
+                    break
+        except (EOFError, OSError, BrokenPipeError):
+            healthy = False
+            self._lost(worker)
+        if healthy:
+            POOL.release(worker)
+        else:
+            POOL.discard(worker)
 
-    def _cancelled(self) -> bool:
-        with self._cond:
-            return self._cancel
+    def _lost(self, worker: WorkerProcess) -> None:
+        """The worker process went away in the middle of a run (killed, out of memory...)."""
+        if self._cancel_at is not None:
+            return  # it was being stopped anyway
+        worker.process.join(1.0)
+        code = worker.process.exitcode
+        self.failed.emit(self.run_id, f"the simulation engine stopped unexpectedly (exit code {code}); "
+                                      "press Run to start it again")
+
+    def _emit(self, kind: str, payload) -> None:
+        rid = self.run_id
+        if kind == "setup":
+            self.setup.emit(rid, payload)
+        elif kind == "frame":
+            self.frame.emit(rid, payload)
+        elif kind == "finished":
+            self.finished_run.emit(rid, payload)
+        elif kind == "failed":
+            self.failed.emit(rid, payload)
 
 
 # ---------------------------------------------------------------------------
 # the panel
 # ---------------------------------------------------------------------------
-def _next_trace_step(t: int) -> int:
-    """The next step at which the TV chart gets a point: every step up to 100, then 1/100 of a decade apart."""
-    return max(t + 1, int(math.ceil(t * 10 ** (1 / TRACE_PER_DECADE))))
-
-
 def _tool(text: str, icon: QStyle.StandardPixmap | None, tip: str, name: str) -> QToolButton:
     b = QToolButton()
     b.setText(text)
@@ -510,7 +316,9 @@ class SimulationPanel(QWidget):
         self._n_bars = -1
         self._bar_top = 0.0
         self._tv_pts = {"final": ([], []), "average": ([], [])}
+        self._tv_drawn = None
         self._closed = False
+        self._prewarmed = False
 
         # -- controls
         self.fields = PlanFields(workspace, self.run_plan,
@@ -583,6 +391,9 @@ class SimulationPanel(QWidget):
         self.status = QLabel("Ready: press Run to simulate the plan.")
         self.status.setObjectName("simStatus")
         self.status.setWordWrap(True)
+        # two lines always: a changing text never moves the charts (no relayout per frame)
+        self.status.setFixedHeight(2 * self.status.fontMetrics().lineSpacing() + 4)
+        self.status.setAlignment(Qt.AlignmentFlag.AlignLeft | Qt.AlignmentFlag.AlignTop)
         self.status.setStyleSheet(f"color: {pal.INK.name()};")
         self.prediction = QLabel("")
         self.prediction.setObjectName("simPrediction")
@@ -599,7 +410,7 @@ class SimulationPanel(QWidget):
         self.verdict.setVisible(False)
 
         # -- charts (items are made once; frames only call setData / setOpts)
-        self.bars = ChartBox("Share of replicates in each state", name="simBars")
+        self.bars = ChartBox("Share of replicates in each state", name="simBars", grid=False)
         self.bars.set_labels("", "share")
         bi = self.bars.item
         w = 0.26
@@ -612,7 +423,7 @@ class SimulationPanel(QWidget):
         for item in (self.bar_sim, self.bar_exact, self.bar_long, self.noise_band):
             bi.addItem(item)
         self._bar_w = w
-        self.tv = ChartBox("Distance to the long-run law", name="simTV")
+        self.tv = ChartBox("Distance to the long-run law", name="simTV", grid=False)
         self.tv.set_labels("step t (log scale)", "TV distance")
         ti = self.tv.item
         self.tv_curve = pg.PlotDataItem(pen=pg.mkPen(CURVE, width=2.2))
@@ -627,8 +438,8 @@ class SimulationPanel(QWidget):
         for item in (self.tol_line, self.floor_line, self.now_line):
             ti.addItem(item, ignoreBounds=True)
             item.setVisible(False)
-        self.paths = ChartBox("A few sample paths (their last steps)", name="simPaths")
-        self.paths.set_labels("step", "")
+        self.paths = ChartBox("A few sample paths (their last steps)", name="simPaths", grid=False)
+        self.paths.set_labels("steps before t", "")
         self.paths.setMinimumHeight(120)
         pcol = [pal.OKABE_ITO[k] for k in ("blue", "orange", "bluish_green", "reddish_purple")]
         self.path_items = []
@@ -679,6 +490,13 @@ class SimulationPanel(QWidget):
         self._show_view(self.run_plan.values.estimator)
         self._reset_charts()
         self._update_buttons()
+
+    def showEvent(self, event) -> None:  # noqa: N802 - Qt's name
+        """Start a worker process in the background the first time the panel is seen."""
+        super().showEvent(event)
+        if not self._prewarmed and default_mode() == "process":
+            self._prewarmed = True
+            threading.Thread(target=POOL.prewarm, name="longrun-prewarm", daemon=True).start()
 
     # -- settings -------------------------------------------------------------------
     def on_edit(self) -> str:
@@ -920,6 +738,7 @@ class SimulationPanel(QWidget):
         self._pending = None
         self.setup_info = None
         self._tv_pts = {"final": ([], []), "average": ([], [])}
+        self._tv_drawn = None
         chain = self.workspace.document.chain
         self._layout_bars(chain.ids)
         z = np.zeros(chain.n)
@@ -964,6 +783,7 @@ class SimulationPanel(QWidget):
         ax = self.paths.item.getAxis("left")
         ax.setTicks([state_ticks(ids, max_labels=6, width=8), []])
         self.paths.item.setYRange(-0.6, max(n - 0.4, 0.6), padding=0)
+        self.paths.item.setXRange(-(PATH_LENGTH - 1), 0, padding=0.01)
 
     def _prepare_charts(self, setup: RunSetup) -> None:
         ids = setup.ids
@@ -996,16 +816,23 @@ class SimulationPanel(QWidget):
         ti.getAxis("left").setTicks(log_ticks(y0, 0))
         self._apply_view_items()
 
-    def _apply_view_items(self) -> None:
+    def _apply_view_items(self) -> bool:
+        """Show the items of the estimate in view; True when the simulated TV points were redrawn."""
         avg = self.run_plan.values.estimator == "average"
         self.tv_avg_curve.setVisible(avg)
         self.floor_line.setVisible(not avg and self.setup_info is not None and self.setup_info.noise_floor > 0)
         self.noise_band.setVisible(not avg)
-        xs, ys = self._tv_pts["average" if avg else "final"]
+        view = "average" if avg else "final"
+        xs, ys = self._tv_pts[view]
+        key = (view, len(xs), xs[-1] if xs else None, self.run_id)
+        if key == self._tv_drawn:
+            return False
+        self._tv_drawn = key
         if xs:
             self.tv_points.setData(np.log10(np.asarray(xs, float)), np.log10(np.asarray(ys, float)))
         else:
             self.tv_points.setData([], [])
+        return True
 
     def _add_tv_point(self, view: str, x: float, tv: float) -> None:
         if x <= 0 or not (tv > 0) or not math.isfinite(tv):
@@ -1067,22 +894,21 @@ class SimulationPanel(QWidget):
                                     f"of {v.burn_in:,})")
         else:
             self.bars.set_title(f"Share of {R:,} replicates in each state at step t = {snap.step:,}")
-        self._apply_view_items()
-        if snap.step >= 1:
+        if self._apply_view_items() and snap.step >= 1:  # the TV chart is redrawn only when it has news
             self.now_line.setPos(math.log10(snap.step))
             self.now_line.setVisible(True)
         # sample paths
         paths = snap.paths
         if paths.size:
             m = paths.shape[1]
-            xs = np.arange(snap.path_start, snap.path_start + m, dtype=float)
+            # x is "steps before t", so the axis stays put while the paths scroll
+            xs = np.arange(snap.path_start - snap.step, snap.path_start - snap.step + m, dtype=float)
             p = paths.shape[0]
             for k, item in enumerate(self.path_items):
                 if k < p:
                     item.setData(xs, paths[k].astype(float) + (k - (p - 1) / 2) * 0.1)
                 else:
                     item.setData([], [])
-            self.paths.item.setXRange(xs[0], max(xs[-1], xs[0] + 1), padding=0.01)
         # progress
         total = snap.total_steps
         self.progress.setValue(int(1000 * snap.step / total) if total else 1000)

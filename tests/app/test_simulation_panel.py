@@ -333,3 +333,38 @@ def test_tv_chart_items_are_made_once(qtbot, make_panels):
     xs, ys = sp.tv_points.getData()
     assert len(xs) >= 2 and np.all(np.isfinite(xs)) and np.all(ys <= 0)  # log10 of TV <= 1
     assert sp.render_count >= 2
+
+
+def test_thread_mode_gives_the_same_run(qtbot, make_panels, monkeypatch):
+    from core.simulate import ReplicateSimulation
+
+    monkeypatch.setenv("LONGRUN_SIMULATION_MODE", "thread")
+    chain = _chain("market_regimes.json")
+    ws, p = make_panels(chain)
+    sp = p["simulation"]
+    ws.run_plan.update(replicates=400, steps=300, burn_in=7, stride=2, seed=99)
+    sp.run()
+    assert sp.thread.mode == "thread"
+    _finish(qtbot, sp)
+    direct = ReplicateSimulation(chain.matrix(), replicates=400, steps=300, start=0, burn_in=7, stride=2,
+                                 seed=99).run()
+    np.testing.assert_array_equal(sp.report.result.ensemble, direct.ensemble)
+    np.testing.assert_array_equal(sp.report.result.occupancy, direct.occupancy)
+
+
+def test_a_worker_process_that_dies_is_reported(qtbot, make_panels):
+    from app.simulation_panel import live_simulation_threads
+
+    ws, p = make_panels(_chain("pump_wear.json"))
+    sp = p["simulation"]
+    ws.run_plan.update(replicates=5000, steps=10**8, seed=1)
+    sp.run()
+    qtbot.waitUntil(lambda: sp.frame is not None and sp.thread.worker is not None, timeout=15000)
+    assert sp.thread.mode == "process"
+    sp.thread.worker.process.kill()  # as if the system killed it
+    qtbot.waitUntil(lambda: sp.state == "failed", timeout=10000)
+    assert "stopped unexpectedly" in sp.status.text()
+    qtbot.waitUntil(lambda: live_simulation_threads() == [], timeout=10000)
+    assert sp.run()  # a new engine starts for the next run
+    qtbot.waitUntil(lambda: sp.frame is not None and sp.frame.snap.step > 0, timeout=15000)
+    sp.reset()
