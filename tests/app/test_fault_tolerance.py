@@ -134,7 +134,7 @@ def _replay(start: Chain, seed: int, k: int) -> list[Chain]:
 
 
 @pytest.mark.timeout(120)
-@pytest.mark.parametrize("seed", [11, 2027])
+@pytest.mark.parametrize("seed", [2027])
 def test_kill_mid_edit_then_the_recovery_file_restores_the_unsaved_edits(window, dialogs, pump, seed):
     from app.layout import fill_missing_positions
     from app.settings import Settings

@@ -65,15 +65,13 @@ def test_same_seed_same_json_twice_in_one_process(capsys):
 
 @pytest.mark.timeout(120)
 def test_same_seed_same_json_across_processes(capsys):
-    here = untimed(cli_json(capsys, PUMP, *RUN))
-    there = [untimed(cli_json_in_process_of_its_own(PUMP, *RUN, hash_seed=h)) for h in ("1", "4242")]
-    assert there[0] == here
-    assert there[1] == here
+    here = untimed(cli_json(capsys, PUMP, *RUN))  # this process has its own random hash seed
+    there = untimed(cli_json_in_process_of_its_own(PUMP, *RUN, hash_seed="4242"))
+    assert there == here
 
 
-@pytest.mark.timeout(120)
 def test_a_fresh_seed_is_reported_and_reproduces_the_run(capsys):
-    fresh = cli_json_in_process_of_its_own(TANKER, "-R", "40", "-T", "500", hash_seed="7")
+    fresh = cli_json(capsys, TANKER, "-R", "40", "-T", "500")
     seed = fresh["seed"]
     assert isinstance(seed, int) and seed > 2**64  # 128 bits of fresh entropy
     again = cli_json(capsys, TANKER, "-R", "40", "-T", "500", "--seed", seed)
