@@ -126,3 +126,70 @@ def test_deep_nesting_in_a_subprocess_gives_clean_exit(tmp_path):
     r = subprocess.run([sys.executable, "-m", "core", "validate", str(f)], capture_output=True, text=True,
                        timeout=60)
     assert r.returncode == 2 and "nested more than" in r.stderr and "Traceback" not in r.stderr
+
+
+# ---------------------------------------------------------------------------
+# the same malformed input through the command line: exit 2 and a message, never a traceback
+
+MALFORMED = st.one_of(
+    st.binary(max_size=300),
+    st.integers(min_value=0, max_value=len(GOOD_TEXT) - 2).map(lambda k: GOOD_TEXT[:k].encode()),
+    st.tuples(st.integers(min_value=0, max_value=len(GOOD_TEXT) - 1), st.binary(min_size=1, max_size=4)).map(
+        lambda t: GOOD_TEXT.encode()[: t[0]] + t[1] + GOOD_TEXT.encode()[t[0] + len(t[1]):]),
+    st.tuples(st.sampled_from(["states", "transitions", "version", "format", "step"]), json_values).map(
+        lambda kv: json.dumps({**GOOD, kv[0]: kv[1]}, allow_nan=True).encode()),
+)
+
+
+def _cli(argv):
+    import contextlib
+    import io
+
+    from core.cli import main
+
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        code = main(argv)  # anything but a clean exit status propagates and fails the test
+    return code, out.getvalue(), err.getvalue()
+
+
+@settings(max_examples=40)
+@given(MALFORMED, st.sampled_from(["validate", "analyze"]), st.sampled_from([".json", ".csv"]))
+def test_cli_on_malformed_files_exits_2_with_a_message(data, command, suffix):
+    import tempfile
+    from pathlib import Path
+
+    with tempfile.TemporaryDirectory() as folder:
+        f = Path(folder) / f"input{suffix}"
+        f.write_bytes(data)
+        try:
+            cio.read_matrix_csv(f) if suffix == ".csv" else cio.load_chain(f)
+            readable = True
+        except ChainFileError:
+            readable = False
+        code, out, err = _cli([command, str(f)])
+    if not readable:
+        assert code == 2
+        assert err.startswith("longrun: error: ") and str(f) in err
+    else:  # it parsed (possibly with validation problems): 0 when valid, else 2 naming the problems
+        assert code in (0, 2)
+        if code == 2:
+            assert str(f) in err and ("problem" in err or "error" in err)
+    assert "Traceback" not in err
+
+
+def test_cli_subprocess_on_malformed_files_prints_no_traceback(tmp_path):
+    samples = {
+        "truncated.json": GOOD_TEXT[: len(GOOD_TEXT) // 2].encode(),
+        "noise.json": bytes(range(256)),
+        "latin1.csv": "from,\xe9tat\n\xe9tat,1\n".encode("latin-1"),
+        "typed.json": json.dumps({**GOOD, "states": {"a": 1}}).encode(),
+    }
+    for name, data in samples.items():
+        (tmp_path / name).write_bytes(data)
+    for name, command in zip(samples, ("validate", "analyze", "validate", "analyze")):
+        r = subprocess.run([sys.executable, "-m", "core", command, str(tmp_path / name)], capture_output=True,
+                           text=True, timeout=60)
+        assert r.returncode == 2, (name, command, r.stderr)
+        assert r.stderr.startswith("longrun: error: ") and name in r.stderr
+        assert "Traceback" not in r.stderr and r.stdout == ""
