@@ -96,6 +96,7 @@ __all__ = [
     "cell_table",
     "start_law",
     "estimate_memory",
+    "build_bytes",
     "memory_limit_from_env",
     "parse_bytes",
     "SimulationSnapshot",
@@ -296,6 +297,29 @@ def table_bytes(P) -> int:
     if kind == "split":
         return n * (4 << b) + 16 * nnz
     return n * (16 << b)
+
+
+def _build_work(n: int, kmax: int, bits: int, kind: str) -> int:
+    """Working memory of building a cell table (bytes, an upper bound).
+
+    Rows are built in blocks of ``nb`` rows with ``nb * kmax`` about 2**20: per
+    block, the support mask and its sort order over the full row width (10
+    bytes per entry), some twenty arrays of 8 bytes per (row, successor) plus the
+    lists of cells, and the block's cells while they are laid out (up to 32 bytes
+    per cell of a wide table, 12 of a split one); and the checked copy of the
+    matrix with two masks of it (10 bytes per entry).  Measured peaks stay below
+    this (tests/core/test_resource_guards.py).
+    """
+    nb = min(n, max(1, (1 << 20) // max(1, kmax)))
+    per_cell = 32 if kind == "wide" else 12
+    return 10 * n * n + nb * (10 * n + 320 * kmax + per_cell * (1 << bits))
+
+
+def build_bytes(P) -> int:
+    """Working memory :func:`cell_table` needs for ``P`` beyond the table itself (an upper bound)."""
+    P = np.asarray(P)
+    kind, b = _plan_table(P)
+    return _build_work(P.shape[0], int((P > 0).sum(axis=1).max()), b, kind)
 
 
 def cell_table(P, *, bits: int | None = None, kind: str | None = None) -> CellTable:
@@ -614,15 +638,19 @@ def _batches(kept: int, tracked: int) -> tuple[int, int]:
 
 
 def estimate_memory(n: int, replicates: int, *, tracked: int, kept: int, paths: int = DEFAULT_PATHS,
-                    path_length: int = DEFAULT_PATH_LENGTH, table_bytes: int | None = None) -> dict[str, int]:
+                    path_length: int = DEFAULT_PATH_LENGTH, table_bytes: int | None = None,
+                    build_bytes: int | None = None) -> dict[str, int]:
     """Bytes a run needs, by part (``"total"`` is the sum).
 
-    Parts: ``matrix`` (a copy of ``P``), ``table`` (cell table),
+    Parts: ``matrix`` (a copy of ``P``), ``table`` (cell table), ``build``
+    (working memory while the table is built; 0 for a table given ready),
     ``replicates`` (per-replicate work arrays and buffers), ``tracked``
     (per-replicate batch counts of the tracked replicates), ``paths``.
     """
     if table_bytes is None:
         table_bytes = n * (16 << _min_bits(n))  # dense worst case (a wide table)
+    if build_bytes is None:
+        build_bytes = _build_work(n, n, _min_bits(n), "wide")  # dense worst case
     nb, _ = _batches(kept, tracked)
     count_bytes = 4 if kept < 2**31 else 8
     R = replicates
@@ -630,6 +658,7 @@ def estimate_memory(n: int, replicates: int, *, tracked: int, kept: int, paths: 
     parts = {
         "matrix": 8 * n * n,
         "table": int(table_bytes),
+        "build": int(build_bytes),
         # offsets int32, index int64, flags, records (wide), start draw (float64 + int64),
         # and per block: kept rows int64, random words (up to 8 bytes per replicate-step)
         "replicates": R * (4 + 8 + 1 + 16 + 16) + block * R * (8 + 8),
@@ -951,8 +980,9 @@ class ReplicateSimulation:
         if table is not None and table.n != n:
             raise ValueError(f"the table is for {table.n} states, P has {n}")
         tbytes = table_bytes(P) if table is None else table.nbytes
+        bbytes = build_bytes(P) if table is None else 0
         self.memory = estimate_memory(n, R, tracked=self.tracked, kept=self.kept_planned, paths=self.n_paths,
-                                      path_length=path_length, table_bytes=tbytes)
+                                      path_length=path_length, table_bytes=tbytes, build_bytes=bbytes)
         if self.memory["total"] > memory_limit:
             parts = ", ".join(f"{k} {_format_bytes(v)}" for k, v in self.memory.items() if k != "total" and v)
             raise LimitError(
