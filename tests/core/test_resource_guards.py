@@ -348,3 +348,41 @@ def test_default_observation_row_limit(monkeypatch):
     with pytest.raises(LimitError, match=r"many.csv: more than 3 data rows.*LONGRUN_MAX_ROWS"):
         datafile.parse_table("state\na\nb\na\nb\n", source="many.csv")
     assert len(datafile.parse_table("state\na\nb\na\n", source="few.csv").rows) == 3
+
+
+# ---------------------------------------------------------------------------
+# the memory estimate the guard checks must not be below what a run takes
+
+
+def _random_matrix(n, per_row, seed):
+    rng = np.random.default_rng(seed)
+    P = np.zeros((n, n))
+    for i in range(n):
+        cols = rng.choice(n, size=min(n, per_row), replace=False)
+        P[i, cols] = rng.random(cols.size) + 1e-3
+    return P / P.sum(axis=1, keepdims=True)
+
+
+@pytest.mark.parametrize("n, per_row, replicates, tracked", [
+    (4, 4, 200_000, 1000),      # many replicates of a small chain
+    (60, 60, 5000, 5000),       # every replicate tracked
+    (1000, 1000, 500, 500),     # a dense chain: the cell table and its construction dominate
+    (3000, 20, 200, 200),       # a sparse chain of many states
+])
+def test_memory_estimate_bounds_the_measured_peak(n, per_row, replicates, tracked):
+    P = _random_matrix(n, per_row, seed=n)
+    tracemalloc.start()
+    try:
+        base = tracemalloc.get_traced_memory()[0]
+        sim = ReplicateSimulation(P, replicates=replicates, steps=40, burn_in=5, seed=3, tracked=tracked)
+        for _ in sim.snapshots(every=10):
+            pass
+        result = sim.result()
+        peak = tracemalloc.get_traced_memory()[1] - base
+    finally:
+        tracemalloc.stop()
+    estimate = sim.memory["total"]
+    print(f"\nn={n}, {per_row} per row, R={replicates}: estimate {estimate / MiB:.1f} MiB, measured peak "
+          f"{peak / MiB:.1f} MiB (ratio {peak / estimate:.2f})")
+    assert result.ensemble.sum() == replicates
+    assert peak <= estimate
