@@ -215,7 +215,13 @@ class FindingsPane(QWidget):
         elif out.note:
             text += f" ({out.note})."
         self.summary.setText(text)
-        self.detail.setHtml(self._hint)
+        self.detail.setHtml(self._overview(out))
+        rows = max(1, min(len(out.findings), 8))
+        head = self.tree.header().sizeHint().height()
+        row_h = self.tree.sizeHintForRow(0) if len(out.findings) else 20
+        total = sum(self.splitter.sizes()) or 400
+        list_h = min(head + rows * max(row_h, 18) + 8, total // 2)
+        self.splitter.setSizes([list_h, max(80, total - list_h)])
         if keep is not None:
             for row in range(self.tree.topLevelItemCount()):
                 it = self.tree.topLevelItem(row)
@@ -228,6 +234,18 @@ class FindingsPane(QWidget):
                     self._show_detail(f)
                     break
         self.findingsShown.emit(k)
+
+    def _overview(self, out: FindingsOutcome) -> str:
+        """Every finding's title and first sentence (shown while none is selected)."""
+        if not out.findings:
+            return self._hint
+        parts = [self._hint]
+        for f in out.findings:
+            colour = SEVERITY_COLOUR.get(f.severity, pal.INK_SOFT).darker(120).name()
+            first = f.explanation.split(". ")[0].rstrip(".") + "."
+            parts.append(f"<p style='margin:6px 0 0 0'><b style='color:{colour}'>{SEVERITY_TEXT.get(f.severity, '')}"
+                         f"</b> · <b>{html.escape(f.title)}</b><br>{html.escape(first)}</p>")
+        return "".join(parts)
 
     def _current_key(self):
         items = self.tree.selectedItems()

@@ -214,7 +214,7 @@ class LongRunPanel(QWidget):
         self.laws = _table(["State", "Class", "Long-run share", "Mean return time (steps)", "in real time"],
                            "longrunLaws")
         self.absorb_title = _section("Leaving the transient states")
-        self.absorb = _table(["From", "Expected steps to a closed class", "in real time"], "longrunAbsorption")
+        self.absorb = _table(["From", "Steps to absorption", "in real time"], "longrunAbsorption")
         self.absorb_note = _note()
         self.times = QFormLayout()
         self.times.setLabelAlignment(Qt.AlignmentFlag.AlignRight)
@@ -423,16 +423,15 @@ class LongRunPanel(QWidget):
         self.absorb.setVisible(bool(T))
         self.absorb_title.setVisible(bool(T))
         if T:
-            cols = ["From"] + [f"ends in C{k + 1}" for k in range(ncl)] + ["Expected steps to a closed class",
-                                                                          "in real time"]
+            cols = ["From"] + [f"ends in C{k + 1}" for k in range(ncl)] + ["Steps to absorption", "in real time"]
             self.absorb.setColumnCount(len(cols))
             self.absorb.setHorizontalHeaderLabels(cols)
             with table_filling(self.absorb):
                 self._fill_absorb(r, chain, iv)
             _fit_height(self.absorb)
-            self.absorb_note.setText("Each transient state is left for good sooner or later; the columns give the "
-                                     "probability of ending in each closed class and the expected steps until "
-                                     "then.")
+            self.absorb_note.setText("Each transient state is left for good sooner or later: the probability of "
+                                     "ending in each closed class, and the expected steps until a closed class "
+                                     "is entered.")
         else:
             self.absorb_note.setText("")
         self._show_times(r, iv)
@@ -607,7 +606,10 @@ class LongRunPanel(QWidget):
         self.law_chart.set_legend([("fill", pal.tint(pal.class_colour(k), 0.35), f"closed class C{k + 1}")
                                    for k in k_used]
                                   + ([("band", pal.INK, "interval")] if err_x else []))
-        self.law_note.setText("")
+        single = [f"C{k + 1} ({ids[s.classes[ci].states[0]]})" for k, ci in enumerate(s.closed)
+                  if s.classes[ci].size == 1]
+        self.law_note.setText(("Absorbing, not charted (once entered, never left): " + ", ".join(single) + ".")
+                              if single else "")
 
     @property
     def busy(self) -> bool:

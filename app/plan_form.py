@@ -480,7 +480,7 @@ class CountSpinBox(QDoubleSpinBox):
         self.setStepType(QAbstractSpinBox.StepType.AdaptiveDecimalStepType)
         self.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
         self.setAccelerated(True)
-        self.setMinimumWidth(84)
+        self.setMinimumWidth(72)
 
     def textFromValue(self, v: float) -> str:  # noqa: N802 - Qt's name
         return f"{int(round(v)):,}" if self._grouping else str(int(round(v)))
@@ -625,12 +625,16 @@ class PlanFields(QWidget):
             return w
         if name == "estimator":
             box = QComboBox()
+            box.setSizeAdjustPolicy(QComboBox.SizeAdjustPolicy.AdjustToMinimumContentsLengthWithIcon)
+            box.setMinimumContentsLength(14)
             for key, text in ESTIMATOR_TEXT.items():
                 box.addItem(text, key)
             box.currentIndexChanged.connect(lambda _i: self._set("estimator", box.currentData()))
             return box
         if name == "speed":
             box = QComboBox()
+            box.setSizeAdjustPolicy(QComboBox.SizeAdjustPolicy.AdjustToMinimumContentsLengthWithIcon)
+            box.setMinimumContentsLength(10)
             for text, v in SPEEDS:
                 box.addItem(text, v)
             box.currentIndexChanged.connect(lambda _i: self._set("speed", box.currentData()))
@@ -741,9 +745,17 @@ def fmt_p(p: float) -> str:
     return f"{p:.4g}"
 
 
+def fmt_tv(x: float) -> str:
+    """A total variation distance; below 1e-12 it is rounding, shown as ``≈ 0``."""
+    x = float(x)
+    if abs(x) < 1e-12:
+        return "≈ 0"
+    return f"{x:.3g}"
+
+
 def fmt_signed(x: float) -> str:
     x = float(x)
-    if x == 0:
+    if abs(x) < 1e-13:
         return "0"
     if abs(x) < 1e-4:
         m, e = f"{x:+.2e}".split("e")
@@ -976,18 +988,20 @@ class PlanForm(QWidget):
 
         step = out.chain.step
         if c.sound:
-            verdict_badge(self.badge, "good", f"Sound: TV {c.tv:.3g} ≤ {c.plan.tolerance:g}")
+            verdict_badge(self.badge, "good", f"Sound: TV {fmt_tv(c.tv)} ≤ {c.plan.tolerance:g}")
         else:
-            verdict_badge(self.badge, "bad", f"Misleading: TV {c.tv:.3g} > {c.plan.tolerance:g}")
+            verdict_badge(self.badge, "bad", f"Misleading: TV {fmt_tv(c.tv)} > {c.plan.tolerance:g}")
         self.sentence.setText(c.sentence)
         self.fact_labels["tv"].setText(
-            f"total variation {c.tv:.4g} (tolerance {c.plan.tolerance:g}): the law this plan's estimate "
-            f"converges to, against the long-run law from the same start")
+            f"total variation {fmt_tv(c.tv) if c.tv < 1e-12 else f'{c.tv:.4g}'} (tolerance {c.plan.tolerance:g}): "
+            "the law this plan's estimate converges to, against the long-run law from the same start")
         if c.min_steps is not None:
             self.fact_labels["min_steps"].setText(f"T = {format_steps(c.min_steps, step)}, at this burn-in")
         else:
             self.fact_labels["min_steps"].setText(f"none: {c.min_steps_reason}")
-        if c.min_burn_in is not None:
+        if c.min_burn_in == 0:
+            self.fact_labels["min_burn_in"].setText("B = 0: no burn-in is needed at this run length")
+        elif c.min_burn_in is not None:
             self.fact_labels["min_burn_in"].setText(f"B = {format_steps(c.min_burn_in, step)}, at this run length")
         else:
             self.fact_labels["min_burn_in"].setText(f"none: {c.min_burn_in_reason}")
@@ -1041,7 +1055,7 @@ class PlanForm(QWidget):
         lx, ly = np.log10(x), np.log10(y)
         self.curve_item.setData(lx, ly)
         tol = c.plan.tolerance
-        lo_y = min([math.log10(tol)] + ([float(ly.min())] if ly.size else [])) - 0.3
+        lo_y = max(min([math.log10(tol)] + ([float(ly.min())] if ly.size else [])) - 0.3, math.log10(tol) - 3)
         hi_y = max([0.0] + ([float(ly.max())] if ly.size else []))
         self.tol_line.setPos(math.log10(tol))
         self.tol_line.setVisible(True)

@@ -239,7 +239,7 @@ class ChartBox(QWidget):
 
         self.plot = pg.PlotWidget(background=pal.PAPER)
         self.plot.setObjectName(self.objectName() + "_plot")
-        self.plot.setMinimumHeight(120)
+        self.plot.setMinimumHeight(50)
         self.item = self.plot.getPlotItem()
         self.item.setMenuEnabled(True)
         self.item.hideButtons()
@@ -287,6 +287,11 @@ class ChartBox(QWidget):
 
     def title(self) -> str:
         return self._title
+
+    def sizeHint(self):  # noqa: N802 - Qt's name
+        from PySide6.QtCore import QSize
+
+        return QSize(480, 230)
 
     def set_labels(self, bottom: str = "", left: str = "") -> None:
         label_style = {"color": pal.INK_SOFT.name(), "font-size": f"{max(8, pal.ui_font(-1).pointSize())}pt"}

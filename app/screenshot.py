@@ -138,6 +138,8 @@ def take_screenshot(file: str, out: str, *, size: tuple[int, int] = (1400, 900),
         win.resize(*size)
         win.show()
         QApplication.processEvents()
+        win.resize(*size)  # again: before the docks were laid out, the minimum could be taller
+        QApplication.processEvents()
         if not wait_for_analysis(win):
             raise LongrunError("the analysis did not finish within 30 s; no screenshot was taken")
         win.canvas.fit_to_view()

@@ -67,7 +67,7 @@ from core.errors import LongrunError
 from . import palette as pal
 from .analysis_service import analysis_key
 from .panels import PanelSpec, Workspace
-from .plan_form import PlanFields, preload_core, shared_plan, verdict_badge
+from .plan_form import PlanFields, fmt_tv, preload_core, shared_plan, verdict_badge
 from .simulation_worker import (PATH_LENGTH, PATHS, POOL, LiveFrame, PlanValues, RunRequest, RunSetup,
                                 ThreadControl, WorkerProcess, default_mode, run_loop)
 from .plot_export import (AVG_CURVE, CURVE, EXACT, GUIDE, LONG_RUN, SIM, ChartBox, finite_positive, log_ticks,
@@ -221,8 +221,8 @@ class SimulationThread(QThread):
         """The worker process went away in the middle of a run (killed, out of memory...)."""
         if self._cancel_at is not None:
             return  # it was being stopped anyway
-        worker.process.join(1.0)
-        code = worker.process.exitcode
+        worker.wait(1.0)
+        code = worker.exitcode()
         self.failed.emit(self.run_id, f"the simulation engine stopped unexpectedly (exit code {code}); "
                                       "press Run to start it again")
 
@@ -440,7 +440,7 @@ class SimulationPanel(QWidget):
             item.setVisible(False)
         self.paths = ChartBox("A few sample paths (their last steps)", name="simPaths", grid=False)
         self.paths.set_labels("steps before t", "")
-        self.paths.setMinimumHeight(120)
+        self.paths.setMinimumHeight(95)
         pcol = [pal.OKABE_ITO[k] for k in ("blue", "orange", "bluish_green", "reddish_purple")]
         self.path_items = []
         for k in range(PATHS):
@@ -457,13 +457,14 @@ class SimulationPanel(QWidget):
         split.addWidget(self.paths)
         split.setStretchFactor(0, 5)
         split.setStretchFactor(1, 4)
-        split.setStretchFactor(2, 2)
+        split.setStretchFactor(2, 3)
         self.splitter = split
 
         verdict_row = QHBoxLayout()
         verdict_row.addWidget(self.badge, 0, Qt.AlignmentFlag.AlignTop)
         verdict_row.addWidget(self.verdict, 1)
-        lay = QVBoxLayout(self)
+        body = QWidget()
+        lay = QVBoxLayout(body)
         lay.setContentsMargins(8, 6, 8, 6)
         lay.setSpacing(5)
         lay.addWidget(self.fields)
@@ -478,6 +479,9 @@ class SimulationPanel(QWidget):
         lay.addWidget(line)
         lay.addWidget(split, 1)
         lay.addLayout(verdict_row)
+        outer = QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        outer.addWidget(body)
 
         self.timer = QTimer(self)
         self.timer.setInterval(REFRESH_MS)
@@ -781,7 +785,7 @@ class SimulationPanel(QWidget):
     def _layout_paths(self, ids) -> None:
         n = len(ids)
         ax = self.paths.item.getAxis("left")
-        ax.setTicks([state_ticks(ids, max_labels=6, width=8), []])
+        ax.setTicks([state_ticks(ids, max_labels=8, width=8), []])
         self.paths.item.setYRange(-0.6, max(n - 0.4, 0.6), padding=0)
         self.paths.item.setXRange(-(PATH_LENGTH - 1), 0, padding=0.01)
 
@@ -801,14 +805,14 @@ class SimulationPanel(QWidget):
         if setup.noise_floor > 0:
             self.floor_line.setPos(math.log10(setup.noise_floor))
         x1 = math.log10(max(10, setup.total_steps))
-        lows = [math.log10(tol)]
-        if setup.noise_floor > 0:
-            lows.append(math.log10(setup.noise_floor))
+        guides = [math.log10(tol)] + ([math.log10(setup.noise_floor)] if setup.noise_floor > 0 else [])
+        lows = list(guides)
         if y.size:
             lows.append(float(np.log10(y).min()))
         if ay.size:
             lows.append(float(np.log10(ay).min()))
-        y0 = max(-6.0, min(lows) - 0.4)
+        # the exact curve may fall far lower; the view stops a little below the noise floor and tolerance
+        y0 = max(-6.0, min(lows) - 0.4, min(guides) - 1.2)
         ti = self.tv.item
         ti.setXRange(0, x1, padding=0.02)
         ti.setYRange(y0, 0.05, padding=0)
@@ -882,7 +886,7 @@ class SimulationPanel(QWidget):
         want = nice_upper(top * 1.04)
         if want != self._bar_top:
             self._bar_top = want
-            self.bars.item.setYRange(0, want, padding=0)
+            self.bars.item.setYRange(0, want * 1.03, padding=0)  # room for the top tick label
         if avg:
             kept = snap.kept
             if kept:
@@ -922,7 +926,7 @@ class SimulationPanel(QWidget):
                 else:
                     eta = (total - snap.step) / v.speed
                 parts.append(_fmt_eta(eta))
-        if frame.rhat_max is not None:
+        if frame.rhat_max is not None and not setup.several_classes:  # (replicates legitimately disagree)
             parts.append(f"R-hat up to {frame.rhat_max:.3f}")
         shown_tv = frame.tv_average if avg else frame.tv_ensemble
         if shown_tv is not None:
@@ -946,7 +950,7 @@ class SimulationPanel(QWidget):
         c = out.check
         word = "sound" if c.sound else "misleading"
         self.prediction.setText(
-            f"Predicted by the exact plan check: this estimate converges to a law at TV {c.tv:.3g} from the "
+            f"Predicted by the exact plan check: this estimate converges to a law at TV {fmt_tv(c.tv)} from the "
             f"long-run law — {word} (tolerance {c.plan.tolerance:g}). From {setup.start_text}, seed {setup.seed}.")
 
     def verdict_parts(self, report) -> tuple[str, str, str]:
@@ -977,17 +981,17 @@ class SimulationPanel(QWidget):
         if exact_tv > tol:
             kind, title = "bad", "MISLEADING"
             text = (f"the {R:,} replicates at {at} are at TV {meas:.3g} from the long-run law (tolerance {tol:g}); "
-                    f"exactly, the law at that step is at {exact_tv:.3g}, so the run is too short for its start and "
+                    f"exactly, the law at that step is at {fmt_tv(exact_tv)}, so the run is too short for its start and "
                     "more replicates would not help.")
         elif meas > tol:
             kind, title = "warn", "NOISY"
-            text = (f"exactly, the law at {at} is within the tolerance (TV {exact_tv:.3g} ≤ {tol:g}), but the "
+            text = (f"exactly, the law at {at} is within the tolerance (TV {fmt_tv(exact_tv)} ≤ {tol:g}), but the "
                     f"{R:,} replicates are at TV {meas:.3g} from the long-run law (noise ~{noise:.2g}): use more "
                     "replicates.")
         else:
             kind, title = "good", "CONSISTENT"
             text = (f"the {R:,} replicates at {at} are at TV {meas:.3g} from the long-run law, within the tolerance "
-                    f"{tol:g} (exact law at that step: {exact_tv:.3g}; noise ~{noise:.2g}).")
+                    f"{tol:g} (exact law at that step: {fmt_tv(exact_tv)}; noise ~{noise:.2g}).")
         p = report.gof.pvalue
         if math.isfinite(p):
             text += f" The ensemble is a fair sample of the exact law at that step (chi-square p = {p:.2g})."

@@ -36,7 +36,7 @@ from core.errors import LongrunError, OptionError
 __all__ = [
     "SIM_MAX_STEPS", "SIM_MAX_REPLICATES", "PlanValues", "ResolvedPlan", "resolve_plan",
     "RunRequest", "RunSetup", "LiveFrame", "ExactTracker", "Control", "ThreadControl", "PipeControl",
-    "run_loop", "child_main", "WorkerPool", "POOL", "PATHS", "PATH_LENGTH", "CHUNK_SECONDS",
+    "run_loop", "child_main", "serve_fd", "WorkerProcess", "WorkerPool", "POOL", "PATHS", "PATH_LENGTH", "CHUNK_SECONDS",
 ]
 
 #: Largest run length and burn-in the live simulation accepts (core.simulate.MAX_STEPS).
@@ -242,6 +242,7 @@ class RunSetup:
     noise_floor: float
     seed: int
     notes: tuple = ()
+    several_classes: bool = False
 
 
 @dataclass(frozen=True, eq=False)
@@ -474,7 +475,8 @@ def run_loop(req: RunRequest, emit: Callable[[str, Any], None], control: "Contro
         run_id=rid, ids=chain.ids, labels=tuple(x.display_name for x in chain.states), values=v,
         start_text=res.start_text, start_law=pi0, long_run=long_run, total_steps=total,
         kept_planned=sim.kept_planned, curve_steps=grid, curve_tv=d_start, avg_steps=sim.burn_in + Ts,
-        avg_tv=avg_tv, noise_floor=floor, seed=sim.seed, notes=tuple(notes)))
+        avg_tv=avg_tv, noise_floor=floor, seed=sim.seed, notes=tuple(notes),
+            several_classes=len(reached) > 1))
     tracker = ExactTracker(P, pi0, sim.burn_in, s, sim.kept_planned)
 
     trace: list[tuple] = []
@@ -636,17 +638,78 @@ def _send(conn, msg) -> bool:
 
 
 class WorkerProcess:
-    """One worker process and the app's end of its pipe."""
+    """One worker process and the app's end of its connection.
 
-    def __init__(self, ctx):
-        parent, child = ctx.Pipe(duplex=True)
-        self.conn = parent
-        self.process = ctx.Process(target=child_main, args=(child,), name="longrun-simulation", daemon=True)
-        self.process.start()
-        child.close()
+    On POSIX the process is ``python -c "...serve_fd(fd)"`` with one end of a
+    socket pair (so nothing of the app's main script is re-run in it, and no
+    Qt is imported there); elsewhere it is a ``multiprocessing`` "spawn"
+    process.  Either way messages are pickled over a
+    :class:`multiprocessing.connection.Connection`.
+    """
+
+    def __init__(self, ctx=None):
+        self._mp = None
+        self._popen = None
+        if os.name == "posix" and ctx is None:
+            import socket
+            import subprocess
+            import sys
+            from multiprocessing.connection import Connection
+
+            ours, theirs = socket.socketpair()
+            root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+            env = dict(os.environ)
+            env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+            code = "import sys; from app.simulation_worker import serve_fd; serve_fd(int(sys.argv[1]))"
+            try:
+                self._popen = subprocess.Popen([sys.executable, "-c", code, str(theirs.fileno())],
+                                               pass_fds=(theirs.fileno(),), env=env, stdin=subprocess.DEVNULL,
+                                               close_fds=True)
+            finally:
+                theirs.close()
+            self.conn = Connection(ours.detach())
+        else:
+            import multiprocessing
+
+            ctx = ctx or multiprocessing.get_context("spawn")
+            parent, child = ctx.Pipe(duplex=True)
+            self.conn = parent
+            self._mp = ctx.Process(target=child_main, args=(child,), name="longrun-simulation", daemon=True)
+            self._mp.start()
+            child.close()
+
+    @property
+    def pid(self) -> int | None:
+        return self._popen.pid if self._popen is not None else self._mp.pid
 
     def alive(self) -> bool:
-        return self.process.is_alive()
+        if self._popen is not None:
+            return self._popen.poll() is None
+        return self._mp.is_alive()
+
+    def exitcode(self) -> int | None:
+        return self._popen.poll() if self._popen is not None else self._mp.exitcode
+
+    def wait(self, timeout: float) -> None:
+        if self._popen is not None:
+            import subprocess
+
+            try:
+                self._popen.wait(timeout)
+            except subprocess.TimeoutExpired:
+                pass
+        else:
+            self._mp.join(timeout)
+
+    def kill(self) -> None:
+        """Stop the process at once (its run is lost) and release the connection."""
+        if self.alive():
+            if self._popen is not None:
+                self._popen.kill()
+            else:
+                self._mp.kill()
+        self.wait(2.0)
+        self._close()
 
     def stop(self, timeout: float = 2.0) -> None:
         """Ask the process to quit, then make sure it is gone."""
@@ -654,23 +717,32 @@ class WorkerProcess:
             self.conn.send(("quit",))
         except (EOFError, OSError, BrokenPipeError):
             pass
-        self.process.join(timeout)
-        if self.process.is_alive():
-            self.process.kill()
-            self.process.join(1.0)
-        self.conn.close()
-        self.process.close()
+        self.wait(timeout)
+        if self.alive():
+            self.kill()
+        self._close()
 
-    def kill(self) -> None:
-        if self.process.is_alive():
-            self.process.kill()
-        self.process.join(1.0)
-        self.conn.close()
-        self.process.close()
+    def _close(self) -> None:
+        try:
+            self.conn.close()
+        except OSError:
+            pass
+        if self._mp is not None and not self._mp.is_alive():
+            try:
+                self._mp.close()
+            except ValueError:
+                pass
+
+
+def serve_fd(fd: int) -> None:
+    """Entry point of a POSIX worker process: serve requests on the connected socket ``fd``."""
+    from multiprocessing.connection import Connection
+
+    child_main(Connection(fd))
 
 
 class WorkerPool:
-    """Worker processes kept ready between runs (started with ``spawn``: a clean interpreter, no Qt).
+    """Worker processes kept ready between runs (each a clean interpreter: no Qt, no app state).
 
     ``acquire`` hands out an idle process or starts one (about a second: the
     interpreter and numpy start); ``release`` keeps it for the next run.
@@ -681,15 +753,7 @@ class WorkerPool:
         self.keep = keep
         self._idle: list[WorkerProcess] = []
         self._lock = threading.Lock()
-        self._ctx = None
         self._closed = False
-
-    def _context(self):
-        if self._ctx is None:
-            import multiprocessing
-
-            self._ctx = multiprocessing.get_context("spawn")
-        return self._ctx
 
     def acquire(self) -> WorkerProcess:
         with self._lock:
@@ -698,7 +762,7 @@ class WorkerPool:
                 if w.alive():
                     return w
                 w.kill()
-        return WorkerProcess(self._context())
+        return WorkerProcess()
 
     def release(self, w: WorkerProcess) -> None:
         with self._lock:
@@ -715,7 +779,7 @@ class WorkerPool:
         with self._lock:
             if self._idle or self._closed:
                 return
-        w = WorkerProcess(self._context())
+        w = WorkerProcess()
         self.release(w)
 
     def idle_count(self) -> int:

@@ -361,7 +361,9 @@ def test_a_worker_process_that_dies_is_reported(qtbot, make_panels):
     sp.run()
     qtbot.waitUntil(lambda: sp.frame is not None and sp.thread.worker is not None, timeout=15000)
     assert sp.thread.mode == "process"
-    sp.thread.worker.process.kill()  # as if the system killed it
+    import signal
+
+    os.kill(sp.thread.worker.pid, signal.SIGKILL)  # as if the system killed it
     qtbot.waitUntil(lambda: sp.state == "failed", timeout=10000)
     assert "stopped unexpectedly" in sp.status.text()
     qtbot.waitUntil(lambda: live_simulation_threads() == [], timeout=10000)
