@@ -241,3 +241,54 @@ def test_fitted_chain_shows_intervals(qtbot, panel):
     assert doc.chain.is_valid
     qtbot.waitUntil(lambda: p.chain is doc.chain and p.workspace.analysis.is_idle, timeout=20000)
     assert p.uncertainty is None and p.interval_note.text() == ""
+
+
+@pytest.fixture
+def full_window(qtbot, dialogs):
+    """The main window with every panel (the shared ``window`` fixture has the editor's panels only)."""
+    from app.main import create_application
+    from app.panels import PANEL_MODULES
+    from app.settings import Settings
+    from app.window import MainWindow
+
+    create_application()
+    w = MainWindow(Settings(), restore_layout=False, panels=PANEL_MODULES)
+    qtbot.addWidget(w)
+    w.resize(1400, 900)
+    w.show()
+    qtbot.waitExposed(w)
+    yield w
+    w.shutdown()
+    from app.plan_form import live_job_threads
+    from app.simulation_panel import live_simulation_threads
+
+    assert live_job_threads() == [] and live_simulation_threads() == []
+
+
+def test_new_chain_from_data_opens_unsaved_with_intervals(full_window, dialogs, settle, qtbot, monkeypatch):
+    from core.estimate import fit_counts, fit_to_chain
+
+    from app import fit_dialog
+
+    counts = np.array([[30, 10], [6, 54]])
+    fitted = fit_to_chain(fit_counts(counts, states=["dry", "wet"]), name="fitted weather")
+    asked = []
+
+    def fake_get_chain(cls, parent=None, *, path=None, folder=""):
+        asked.append(folder)
+        return fitted
+
+    monkeypatch.setattr(fit_dialog.FitDialog, "get_chain", classmethod(fake_get_chain))
+    assert full_window.new_from_data()
+    assert asked and full_window.document.chain.ids == ("dry", "wet")
+    assert full_window.document.path is None and full_window.document.is_dirty  # a new chain, not saved yet
+    settle(full_window)
+    p = full_window.panels["longrun"]
+    qtbot.waitUntil(lambda: p.uncertainty is not None and p.chain is full_window.document.chain, timeout=30000)
+    assert "[" in p.laws.item(0, 2).text() and "posterior" in p.interval_note.text()
+    # cancelling the dialog changes nothing
+    monkeypatch.setattr(fit_dialog.FitDialog, "get_chain", classmethod(lambda cls, parent=None, **k: None))
+    before = full_window.document.chain
+    dialogs.save_answers.append("discard")
+    assert not full_window.new_from_data()
+    assert full_window.document.chain is before

@@ -221,3 +221,51 @@ def test_start_choices_follow_the_chain(qtbot, panels):
     ws.run_plan.update(start=("state", "trial"))
     ws.document.rename_state("trial", "trial_run")
     assert ws.run_plan.values.start == ("state", "trial_run")
+
+
+@pytest.fixture
+def full_window(qtbot, dialogs):
+    """The main window with every panel (the shared ``window`` fixture has the editor's panels only)."""
+    from app.main import create_application
+    from app.panels import PANEL_MODULES
+    from app.settings import Settings
+    from app.window import MainWindow
+
+    create_application()
+    w = MainWindow(Settings(), restore_layout=False, panels=PANEL_MODULES)
+    qtbot.addWidget(w)
+    w.resize(1400, 900)
+    w.show()
+    qtbot.waitExposed(w)
+    yield w
+    w.shutdown()
+    from app.plan_form import live_job_threads
+    from app.simulation_panel import live_simulation_threads
+
+    assert live_job_threads() == [] and live_simulation_threads() == []
+
+
+def test_export_report_carries_the_plan_of_the_form(full_window, dialogs, settle, qtbot, tmp_path):
+    import html
+
+    from core.plan import Plan, check_plan
+
+    chain_path = SAMPLES / "credit_eras.json"
+    assert full_window.open_path(chain_path, ask=False)
+    settle(full_window)
+    rp = full_window.workspace.run_plan
+    rp.update(start=("state", "boom_a"), replicates=1000, steps=360, estimator="final")
+    plan, eps = full_window.current_plan()
+    assert (plan.steps, plan.replicates, plan.estimator, eps) == (360, 1000, "final", 0.25)
+    out = tmp_path / "credit-report.html"
+    dialogs.save_paths.append(str(out))
+    assert full_window.export_report()
+    text = out.read_text(encoding="utf-8")
+    want = check_plan(full_window.document.chain, Plan("boom_a", 360, replicates=1000)).sentence
+    assert html.escape(want, quote=True) in text
+    file_menu = full_window.menuBar().actions()[0].menu()
+    assert full_window.actions_by_name["export_report"] in file_menu.actions()
+    assert full_window.actions_by_name["new_from_data"] in file_menu.actions()
+    dialogs.save_paths.append("")  # the file dialog cancelled: nothing written, no error
+    assert not full_window.export_report()
+    assert dialogs.problems == []
