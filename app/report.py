@@ -1298,7 +1298,7 @@ def write_report(report: Report, path, *, max_mb: float | None = None) -> dict:
         data, pages = _pdf_bytes(report)
     if len(data) > limit:
         raise LimitError(
-            f"the report would be {len(data) / 2**20:.1f} MiB, more than the limit of {limit / 2**20:.1f} MiB; "
+            f"the report would be {len(data) / 2**20:.3g} MiB, more than the limit of {limit / 2**20:.3g} MiB; "
             "raise it with --max-size-mb (or the LONGRUN_MAX_REPORT_MB environment variable), or lower "
             "--max-table-states to summarise large tables and leave out the picture"
         )

@@ -165,7 +165,7 @@ def test_export_refuses_a_bad_suffix_and_oversize_output(qapp, tmp_path):
     chain = Chain.from_matrix([[0.9, 0.1], [0.5, 0.5]], ["on", "off"])
     with pytest.raises(OptionError, match=r"must end in \.html or \.pdf"):
         export_report(chain, tmp_path / "x.docx")
-    with pytest.raises(LimitError, match="limit of 0.0 MiB.*--max-size-mb"):
+    with pytest.raises(LimitError, match=r"limit of 0\.01 MiB.*--max-size-mb"):
         export_report(chain, tmp_path / "x.html", max_mb=0.01)
     assert not (tmp_path / "x.html").exists()
 
