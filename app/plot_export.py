@@ -4,8 +4,9 @@ Every chart of the long-run panel, the simulation panel and the plan check is
 a :class:`ChartBox`: a title row (title, legend swatches, a "Save" button)
 over a pyqtgraph :class:`~pyqtgraph.PlotWidget` drawn in the app's palette.
 The Save button and the chart's own right-click menu both offer "Save chart as
-PNG…" and "Save chart as SVG…" (:func:`export_plot`, through pyqtgraph's
-exporters); pyqtgraph's generic export dialog is replaced by these two.
+PNG…" and "Save chart as SVG…" (:func:`export_plot`: PNG through pyqtgraph's
+image exporter, SVG through Qt's SVG paint device); pyqtgraph's generic export
+dialog is replaced by these two.
 
 The legend is drawn by Qt widgets above the plot, never inside it, so it
 cannot hide a bar or a point.  Series are told apart by fill, outline and
@@ -14,6 +15,7 @@ line, dots), following :mod:`app.palette`.
 """
 from __future__ import annotations
 
+import contextlib
 import math
 from pathlib import Path
 from typing import Iterable, Sequence
@@ -159,10 +161,39 @@ def export_plot(plot_item, path: str | Path) -> Path:
     OSError
         When the file cannot be written.
     """
-    from pyqtgraph.exporters import ImageExporter, SVGExporter
-
     p = Path(path)
     suffix = p.suffix.lower()
+    if suffix not in (".png", ".svg"):
+        raise ValueError(f"{p.name}: a chart is saved as .png or .svg")
+    with _uncached(plot_item):
+        _export(plot_item, p, suffix)
+    if not p.is_file():
+        raise OSError(f"{p} was not written")
+    return p
+
+
+@contextlib.contextmanager
+def _uncached(plot_item):
+    """Items painted afresh (not from their on-screen pixmap cache) while a chart is exported."""
+    items, stack = [], [plot_item]
+    while stack:
+        it = stack.pop()
+        stack.extend(it.childItems())
+        if it.cacheMode() != QGraphicsItem.CacheMode.NoCache:
+            items.append(it)
+    modes = [it.cacheMode() for it in items]
+    for it in items:
+        it.setCacheMode(QGraphicsItem.CacheMode.NoCache)
+    try:
+        yield
+    finally:
+        for it, mode in zip(items, modes):
+            it.setCacheMode(mode)
+
+
+def _export(plot_item, p: Path, suffix: str) -> None:
+    from pyqtgraph.exporters import ImageExporter
+
     if suffix == ".png":
         ex = ImageExporter(plot_item)
         rect = plot_item.sceneBoundingRect()
@@ -171,13 +202,40 @@ def export_plot(plot_item, path: str | Path) -> Path:
         ex.parameters()["height"] = int(round(PNG_WIDTH * rect.height() / w))
         ex.parameters()["antialias"] = True
         ex.export(str(p))
-    elif suffix == ".svg":
-        SVGExporter(plot_item).export(str(p))
     else:
-        raise ValueError(f"{p.name}: a chart is saved as .png or .svg")
-    if not p.is_file():
-        raise OSError(f"{p} was not written")
-    return p
+        _export_svg(plot_item, p)
+
+
+def _export_svg(plot_item, path: Path) -> None:
+    """Render the plot item's part of its scene into an SVG drawing (vector shapes, text kept as text).
+
+    pyqtgraph's own SVG exporter rewrites the path data Qt writes, and cannot
+    read the path syntax of the Qt 6 versions this app runs on (it fails on
+    bar charts), so the scene is rendered through Qt's SVG paint device
+    directly; the result is the same picture as on screen.
+    """
+    from PySide6.QtCore import QRect, QSize
+    from PySide6.QtSvg import QSvgGenerator
+
+    scene = plot_item.scene()
+    if scene is None:
+        raise ValueError("the chart is not on screen")
+    src = plot_item.sceneBoundingRect()
+    w, h = max(1, int(round(src.width()))), max(1, int(round(src.height())))
+    gen = QSvgGenerator()
+    gen.setFileName(str(path))
+    gen.setSize(QSize(w, h))
+    gen.setViewBox(QRect(0, 0, w, h))
+    gen.setTitle("Longrun chart")
+    gen.setDescription("Exported from Longrun. Results describe the model, not the world.")
+    painter = QPainter()
+    if not painter.begin(gen):
+        raise OSError(f"{path} could not be opened for writing")
+    try:
+        painter.setRenderHint(QPainter.RenderHint.Antialiasing)
+        scene.render(painter, QRectF(0, 0, w, h), src)
+    finally:
+        painter.end()
 
 
 def _plain_name(text: str) -> str:

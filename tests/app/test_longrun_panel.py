@@ -292,3 +292,37 @@ def test_new_chain_from_data_opens_unsaved_with_intervals(full_window, dialogs, 
     dialogs.save_answers.append("discard")
     assert not full_window.new_from_data()
     assert full_window.document.chain is before
+
+
+def test_charts_save_as_png_and_svg(qtbot, panel, dialogs, tmp_path):
+    import xml.etree.ElementTree as ET
+
+    from core.io import load_chain
+
+    p = panel(load_chain(SAMPLES / "credit_eras.json"))
+    _ready(qtbot, p)
+    chart = p.law_chart
+    png = tmp_path / "law.png"
+    svg = tmp_path / "law"  # the suffix is added
+    dialogs.save_paths.extend([str(png), str(svg)])
+    saved = []
+    chart.exported.connect(saved.append)
+    chart.png_action.trigger()
+    chart.svg_action.trigger()
+    assert saved == [str(png), str(tmp_path / "law.svg")]
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
+    from PySide6.QtGui import QImage
+
+    img = QImage(str(png))
+    assert img.width() == 1600 and img.height() > 200
+    root = ET.parse(tmp_path / "law.svg").getroot()
+    assert root.tag.endswith("svg")
+    text = (tmp_path / "law.svg").read_text(encoding="utf-8")
+    assert "boom_a" in text  # the state names are kept as text
+    # the chart's own right-click menu offers the same two actions
+    menu_actions = chart.item.getViewBox().menu.actions()
+    assert chart.png_action in menu_actions and chart.svg_action in menu_actions
+    # a file that cannot be written is reported, not raised
+    dialogs.save_paths.append(str(tmp_path / "missing" / "x.png"))
+    chart.png_action.trigger()
+    assert dialogs.problems and dialogs.problems[-1][0] == "Could not save the chart"

@@ -370,3 +370,20 @@ def test_a_worker_process_that_dies_is_reported(qtbot, make_panels):
     assert sp.run()  # a new engine starts for the next run
     qtbot.waitUntil(lambda: sp.frame is not None and sp.frame.snap.step > 0, timeout=15000)
     sp.reset()
+
+
+def test_gui_screenshot_after_running_the_plan(tmp_path):
+    """``longrun gui --screenshot --run-plan`` (a subprocess, offscreen): the picture of a finished run."""
+    import subprocess
+    import sys
+
+    out = tmp_path / "run.png"
+    env = dict(os.environ, QT_QPA_PLATFORM="offscreen", LONGRUN_SETTINGS_FILE=str(tmp_path / "s.ini"))
+    proc = subprocess.run([sys.executable, "-m", "core", "gui", str(SAMPLES / "pump_wear.json"), "--screenshot",
+                           str(out), "--size", "1400x900", "--run-plan", "--panel", "simulation"],
+                          capture_output=True, text=True, env=env, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    bad = subprocess.run([sys.executable, "-m", "core", "gui", "--panel", "nowhere", "--screenshot", str(out),
+                          str(SAMPLES / "pump_wear.json")], capture_output=True, text=True, env=env, timeout=120)
+    assert bad.returncode == 2 and "no such panel" in bad.stderr
