@@ -384,6 +384,19 @@ def test_gui_screenshot_after_running_the_plan(tmp_path):
                           capture_output=True, text=True, env=env, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    bad = subprocess.run([sys.executable, "-m", "core", "gui", "--panel", "nowhere", "--screenshot", str(out),
-                          str(SAMPLES / "pump_wear.json")], capture_output=True, text=True, env=env, timeout=120)
-    assert bad.returncode == 2 and "no such panel" in bad.stderr
+    from PySide6.QtGui import QImage
+
+    assert QImage(str(out)).size().width() == 1400
+
+
+def test_screenshot_panel_option_names_the_panels():
+    from core.errors import OptionError
+
+    from app.screenshot import _show_panel
+
+    class Win:  # what _show_panel needs of a window
+        docks = {"simulation": None, "plan": None}
+        panels = {}
+
+    with pytest.raises(OptionError, match="--panel 'nowhere': no such panel \\(choose from simulation, plan\\)"):
+        _show_panel(Win(), "nowhere", False)
