@@ -76,6 +76,8 @@ from .plot_export import (AVG_CURVE, CURVE, EXACT, GUIDE, LONG_RUN, SIM, ChartBo
 __all__ = ["SimulationPanel", "SimulationThread", "RunRequest", "RunSetup", "LiveFrame", "live_simulation_threads",
            "PANELS", "PATHS", "PATH_LENGTH"]
 
+#: Above this many states the bar chart shows one bar per state, with the exact laws as lines.
+DENSE_STATES = 40
 #: Screen refresh of the plots (ms).
 REFRESH_MS = 40
 #: Most simulated points kept on the TV chart (one per 1/200 of a decade of steps).
@@ -420,9 +422,14 @@ class SimulationPanel(QWidget):
                                         pen=pg.mkPen(LONG_RUN, width=1.6))
         self.noise_band = pg.ErrorBarItem(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0), beam=0.12,
                                           pen=pg.mkPen(pal.INK, width=1.3))
-        for item in (self.bar_sim, self.bar_exact, self.bar_long, self.noise_band):
+        # many states: one bar per state and the exact and long-run laws as lines over them
+        self.line_exact = pg.PlotDataItem(stepMode="center", pen=pg.mkPen(EXACT.darker(110), width=1.8))
+        self.line_long = pg.PlotDataItem(stepMode="center",
+                                         pen=pg.mkPen(LONG_RUN, width=1.3, style=Qt.PenStyle.DashLine))
+        for item in (self.bar_sim, self.bar_exact, self.bar_long, self.noise_band, self.line_exact, self.line_long):
             bi.addItem(item)
         self._bar_w = w
+        self._dense = False
         self.tv = ChartBox("Distance to the long-run law", name="simTV", grid=False)
         self.tv.set_labels("step t (log scale)", "TV distance")
         ti = self.tv.item
@@ -722,11 +729,14 @@ class SimulationPanel(QWidget):
 
     def _set_legends(self) -> None:
         avg = self.run_plan.values.estimator == "average"
-        bars = [("fill", SIM, "simulated"),
-                ("fill", EXACT, "exact mean of the kept steps" if avg else "exact law at step t")]
-        if not avg:
-            bars.append(("band", pal.INK, "±2 sd noise"))
-        bars.append(("outline", LONG_RUN, "long-run law"))
+        exact = "exact mean of the kept steps" if avg else "exact law at step t"
+        if getattr(self, "_dense", False):
+            bars = [("fill", SIM, "simulated"), ("line", EXACT.darker(110), exact), ("dash", LONG_RUN, "long-run law")]
+        else:
+            bars = [("fill", SIM, "simulated"), ("fill", EXACT, exact)]
+            if not avg:
+                bars.append(("band", pal.INK, "±2 sd noise"))
+            bars.append(("outline", LONG_RUN, "long-run law"))
         self.bars.set_legend(bars)
         tv = [("dots", SIM, "simulated"), ("line", CURVE, "exact d_start(t)")]
         if avg:
@@ -774,9 +784,21 @@ class SimulationPanel(QWidget):
         n = len(ids)
         x = np.arange(n, dtype=float)
         w = self._bar_w
-        self.bar_sim.setOpts(x=x - w, height=np.zeros(n))
+        self._dense = n > DENSE_STATES
+        if self._dense:
+            self.bar_sim.setOpts(x=x, height=np.zeros(n), width=0.9, pen=pg.mkPen(None))
+        else:
+            self.bar_sim.setOpts(x=x - w, height=np.zeros(n), width=w, pen=pg.mkPen(SIM.darker(125)))
         self.bar_exact.setOpts(x=x, height=np.zeros(n))
         self.bar_long.setOpts(x=x + w, height=np.zeros(n))
+        edges = np.arange(n + 1, dtype=float) - 0.5
+        self.line_exact.setData(edges, np.zeros(n))
+        self.line_long.setData(edges, np.zeros(n))
+        for item in (self.bar_exact, self.bar_long):
+            item.setVisible(not self._dense)
+        for item in (self.line_exact, self.line_long):
+            item.setVisible(self._dense)
+        self._set_legends()
         ax = self.bars.item.getAxis("bottom")
         ax.setTicks([state_ticks(ids), []])
         self.bars.item.setXRange(-0.6, max(n - 0.4, 0.6), padding=0)
@@ -785,7 +807,7 @@ class SimulationPanel(QWidget):
     def _layout_paths(self, ids) -> None:
         n = len(ids)
         ax = self.paths.item.getAxis("left")
-        ax.setTicks([state_ticks(ids, max_labels=8, width=8), []])
+        ax.setTicks([state_ticks(ids, max_labels=6, width=8), []])
         self.paths.item.setYRange(-0.6, max(n - 0.4, 0.6), padding=0)
         self.paths.item.setXRange(-(PATH_LENGTH - 1), 0, padding=0.01)
 
@@ -795,6 +817,7 @@ class SimulationPanel(QWidget):
             self._layout_bars(ids)
         self._layout_paths(ids)
         self.bar_long.setOpts(height=setup.long_run)
+        self.line_long.setData(np.arange(len(ids) + 1, dtype=float) - 0.5, np.asarray(setup.long_run, float))
         x, y = finite_positive(setup.curve_steps, setup.curve_tv)
         self.tv_curve.setData(np.log10(x), np.log10(y))
         ax_, ay = finite_positive(setup.avg_steps, setup.avg_tv)
@@ -825,7 +848,7 @@ class SimulationPanel(QWidget):
         avg = self.run_plan.values.estimator == "average"
         self.tv_avg_curve.setVisible(avg)
         self.floor_line.setVisible(not avg and self.setup_info is not None and self.setup_info.noise_floor > 0)
-        self.noise_band.setVisible(not avg)
+        self.noise_band.setVisible(not avg and not self._dense)
         view = "average" if avg else "final"
         xs, ys = self._tv_pts[view]
         key = (view, len(xs), xs[-1] if xs else None, self.run_id)
@@ -875,10 +898,13 @@ class SimulationPanel(QWidget):
             sim = snap.ensemble / R
             exact = rep.exact_at_step if rep is not None else frame.exact_now
         self.bar_sim.setOpts(height=np.asarray(sim, float))
-        self.bar_exact.setOpts(height=np.asarray(exact, float))
+        if self._dense:
+            self.line_exact.setData(np.arange(len(exact) + 1, dtype=float) - 0.5, np.asarray(exact, float))
+        else:
+            self.bar_exact.setOpts(height=np.asarray(exact, float))
         top = float(max(np.max(sim) if len(sim) else 0, np.max(exact) if len(exact) else 0,
                         np.max(setup.long_run) if len(setup.long_run) else 0))
-        if not avg:
+        if not avg and not self._dense:
             sd = np.sqrt(np.clip(exact * (1 - exact), 0, None) / R)
             self.noise_band.setData(x=np.arange(len(exact), dtype=float), y=np.asarray(exact, float),
                                     height=4 * sd)
@@ -970,9 +996,9 @@ class SimulationPanel(QWidget):
             head, _, rest = report.verdict.partition(": ")
             text = rest or report.verdict
             if report.tv_time_average is not None:
-                text += (f" Measured: the time average is at TV {report.tv_time_average:.3g} from the long-run law"
-                         + (f" (exactly expected for these kept steps: {report.tv_window:.3g})"
-                            if report.tv_window is not None else "") + ".")
+                text += (f" Measured: the time average is at TV {fmt_tv(report.tv_time_average)} from the long-run "
+                         "law" + (f" (exactly expected for these kept steps: {fmt_tv(report.tv_window)})"
+                                  if report.tv_window is not None else "") + ".")
             return kind, report.status.upper(), text
         exact_tv = tv_distance(report.exact_at_step, report.long_run)
         meas = tv_distance(report.ensemble_share, report.long_run)
