@@ -400,3 +400,22 @@ def test_screenshot_panel_option_names_the_panels():
 
     with pytest.raises(OptionError, match="--panel 'nowhere': no such panel \\(choose from simulation, plan\\)"):
         _show_panel(Win(), "nowhere", False)
+
+
+def test_many_states_show_bars_and_exact_lines(qtbot, make_panels):
+    from core.model import Chain
+
+    rng = np.random.default_rng(1234)
+    n = 45
+    P = rng.random((n, n)) * (rng.random((n, n)) < 0.15) + np.eye(n)
+    P /= P.sum(axis=1, keepdims=True)
+    ws, p = make_panels(Chain.from_matrix(P, [f"q{i}" for i in range(n)]))
+    sp = p["simulation"]
+    ws.run_plan.update(replicates=300, steps=40, seed=21)
+    sp.run()
+    _finish(qtbot, sp)
+    assert sp.line_exact.isVisible() and not sp.bar_exact.isVisible()
+    _x, y = sp.line_exact.getData()
+    np.testing.assert_array_equal(y, sp.report.exact_at_step)
+    np.testing.assert_array_equal(_heights(sp.bar_sim), sp.report.result.ensemble / 300)
+    assert "long-run law" in sp.bars.legend_texts()
