@@ -554,6 +554,7 @@ class PlanFields(QWidget):
         self.fields = tuple(fields)
         self.editors: dict[str, QWidget] = {}
         self._structure = None
+        self._start_key = None
         grid = QGridLayout(self)
         grid.setContentsMargins(0, 0, 0, 0)
         grid.setHorizontalSpacing(8)
@@ -695,6 +696,12 @@ class PlanFields(QWidget):
     def _fill_start(self) -> None:
         box: QComboBox = self.editors["start"]
         chain = self.workspace.document.chain
+        s = self._structure
+        key = (tuple((st.id, st.display_name) for st in chain.states),
+               None if s is None or s.n != chain.n else tuple((ci, s.classes[ci].size) for ci in s.closed))
+        if key == self._start_key:
+            return  # a move or an edit of probabilities: the choices are the same
+        self._start_key = key
         box.blockSignals(True)
         box.clear()
         for sid, st in zip(chain.ids, chain.states):

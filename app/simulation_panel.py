@@ -657,9 +657,7 @@ class SimulationPanel(QWidget):
             self._render()
         if self.report is not None and self.state == "finished":
             self._show_report(self.report)
-        if self.state in ("running", "paused") and not self._same_plan():
-            self.status.setText(self.status.text().split(" · plan changed")[0]
-                                + " · plan changed: press Run to apply it")
+        self._update_buttons()
         self._show_prediction()
 
     def _show_view(self, estimator: str) -> None:
@@ -721,8 +719,14 @@ class SimulationPanel(QWidget):
 
     def _update_buttons(self) -> None:
         s = self.state
-        self.run_button.setEnabled(s != "running")
-        self.run_button.setText("Resume" if s == "paused" else ("Run again" if s == "finished" else "Run"))
+        changed = s in ("running", "paused") and self.thread is not None and not self._same_plan()
+        self.run_button.setEnabled(s != "running" or changed)
+        if changed:
+            self.run_button.setText("Restart")
+            self.run_button.setToolTip("The plan was changed: start a new run with it")
+        else:
+            self.run_button.setText("Resume" if s == "paused" else ("Run again" if s == "finished" else "Run"))
+            self.run_button.setToolTip("Run the plan (or resume a paused run)")
         self.pause_button.setEnabled(s == "running")
         self.step_button.setEnabled(True)
         self.reset_button.setEnabled(s in ("running", "paused", "finished", "stopped", "failed"))
@@ -959,6 +963,8 @@ class SimulationPanel(QWidget):
             parts.append(f"TV to long run {shown_tv:.3g}")
         if self.state == "paused":
             parts.append("paused")
+        if self.thread is not None and not self._same_plan():
+            parts.append("plan changed: Restart applies it")
         self.status.setText(" · ".join(parts))
 
     def _show_prediction(self) -> None:

@@ -419,3 +419,21 @@ def test_many_states_show_bars_and_exact_lines(qtbot, make_panels):
     np.testing.assert_array_equal(y, sp.report.exact_at_step)
     np.testing.assert_array_equal(_heights(sp.bar_sim), sp.report.result.ensemble / 300)
     assert "long-run law" in sp.bars.legend_texts()
+
+
+def test_changing_the_plan_during_a_run_offers_a_restart(qtbot, make_panels):
+    ws, p = make_panels(_chain("pump_wear.json"))
+    sp = p["simulation"]
+    ws.run_plan.update(replicates=3000, steps=10**8, seed=4)
+    sp.run()
+    qtbot.waitUntil(lambda: sp.frame is not None and sp.frame.snap.step > 0, timeout=15000)
+    assert not sp.run_button.isEnabled()
+    ws.run_plan.update(seed=5)  # a different run
+    assert sp.run_button.isEnabled() and sp.run_button.text() == "Restart"
+    old = sp.run_id
+    sp.run_button.click()
+    qtbot.waitUntil(lambda: sp.setup_info is not None and sp.setup_info.seed == 5, timeout=15000)
+    assert sp.run_id > old and sp.run_button.text() == "Run" and not sp.run_button.isEnabled()
+    ws.run_plan.update(speed=10.0)  # speed applies to the running run: no restart needed
+    assert not sp.run_button.isEnabled()
+    sp.reset()
