@@ -28,7 +28,6 @@ import html
 import math
 import os
 import re
-import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -1198,34 +1197,9 @@ def _format_of(path: Path) -> str:
 
 
 def _write_atomic(path: Path, data: bytes) -> None:
-    folder = path.parent if str(path.parent) else Path(".")
-    tmp = None
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        m = os.umask(0)
-        os.umask(m)
-        os.chmod(tmp, 0o666 & ~m)
-        os.replace(tmp, path)
-        tmp = None
-    except OSError as exc:
-        reason = exc.strerror or str(exc)
-        if exc.errno == 28:
-            reason = "the disk is full"
-        elif exc.errno in (13, 30):
-            reason = "no permission to write there"
-        elif exc.errno == 2:
-            reason = "the folder does not exist"
-        raise LongrunError(f"{path}: could not write the report: {reason}") from None
-    finally:
-        if tmp is not None:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
+    from core.io import atomic_write_bytes
+
+    atomic_write_bytes(path, data, what="write the report")
 
 
 def export_report(chain, path, *, plan=None, start=None, epsilon: float = 0.25, source: str | None = None,

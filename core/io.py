@@ -39,6 +39,7 @@ __all__ = [
     "pretty_json",
     "save_chain",
     "atomic_write_text",
+    "atomic_write_bytes",
     "read_matrix_csv",
     "reads_matrix_csv",
     "matrix_csv_text",
@@ -389,15 +390,20 @@ def dumps_chain(chain: Chain) -> str:
 
 
 def atomic_write_text(path: str | os.PathLike, text: str) -> None:
-    """Write ``text`` to ``path`` atomically (temp file, fsync, ``os.replace``).
+    """Write ``text`` (UTF-8) to ``path`` atomically; see :func:`atomic_write_bytes`."""
+    atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def atomic_write_bytes(path: str | os.PathLike, data: bytes, *, what: str = "save") -> None:
+    """Write ``data`` to ``path`` atomically (temp file, fsync, ``os.replace``).
 
     The previous content stays intact if anything fails, and the error is
     raised as :class:`ChainFileError` naming the cause (full disk, no
-    permission, missing folder).
+    permission, missing folder); ``what`` names the action in the message
+    (``"could not save"``, ``"could not write the report"``).
     """
     p = Path(path)
     folder = p.parent if str(p.parent) else Path(".")
-    data = text.encode("utf-8")
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=folder)
@@ -430,7 +436,7 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> None:
             reason = "no permission to write there (the folder is read-only or protected)"
         elif exc.errno == 2:
             reason = "the folder does not exist"
-        raise ChainFileError(f"could not save: {reason}; the file on disk was not changed", path=str(path)) from None
+        raise ChainFileError(f"could not {what}: {reason}; the file on disk was not changed", path=str(path)) from None
     finally:
         if tmp is not None:
             try:
