@@ -12,6 +12,7 @@ possible in the simulation panel, and meanwhile
 The last two lines printed are the two figures.  Usage::
 
     .venv/bin/python tests/benchmarks/gui_latency.py [--seconds 8] [--replicates 100000] [--states 50]
+        [--mode process|thread]
 """
 from __future__ import annotations
 
@@ -50,7 +51,11 @@ def main(argv=None) -> int:
     ap.add_argument("--seconds", type=float, default=8.0, help="how long to measure during the run")
     ap.add_argument("--replicates", type=int, default=100_000)
     ap.add_argument("--states", type=int, default=50)
+    ap.add_argument("--mode", choices=("process", "thread"), default="process",
+                    help="where the engine runs: a worker process (the app's default) or a thread of the GUI "
+                    "process (for comparison)")
     args = ap.parse_args(argv)
+    os.environ["LONGRUN_SIMULATION_MODE"] = args.mode
 
     tmp = tempfile.TemporaryDirectory()
     os.environ["LONGRUN_SETTINGS_FILE"] = str(Path(tmp.name) / "settings.ini")
@@ -118,7 +123,8 @@ def main(argv=None) -> int:
     lat = np.asarray(lateness)
     p50, p99, worst = (float(np.percentile(lat, q)) for q in (50, 99, 100)) if lat.size else (float("nan"),) * 3
     rate = frames / elapsed
-    print(f"chain: {args.states} states; run: {args.replicates:,} replicates, state during the measurement: {state}")
+    print(f"chain: {args.states} states; run: {args.replicates:,} replicates in a worker {args.mode}, "
+          f"state during the measurement: {state}")
     print(f"measured {elapsed:.1f} s: {steps:,} steps = {steps * args.replicates / elapsed:.3g} replicate-steps/s")
     print(f"pings: {lat.size} every {PING_MS} ms; lateness median {p50:.1f} ms, worst {worst:.1f} ms")
     print(f"frames drawn: {frames}")
