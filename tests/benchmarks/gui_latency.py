@@ -65,7 +65,7 @@ def main(argv=None) -> int:
     from app.settings import Settings
     from app.window import MainWindow
 
-    app = create_application()
+    create_application()
     win = MainWindow(Settings(), autosave=False, restore_layout=False)
     win.resize(1600, 1000)
     win.document.reset(random_chain(args.states))
