@@ -417,6 +417,7 @@ class LongRunPanel(QWidget):
                 order.append((i, k))
         with table_filling(self.laws):
             self._fill_laws(r, chain, order, iv)
+        self.laws.setColumnHidden(4, step is None)  # "in real time" needs the file's step unit
         _fit_height(self.laws)
         self._chart_laws(r, order, iv)
         T = s.transient_states
@@ -428,6 +429,8 @@ class LongRunPanel(QWidget):
             self.absorb.setHorizontalHeaderLabels(cols)
             with table_filling(self.absorb):
                 self._fill_absorb(r, chain, iv)
+            for c in range(len(cols)):
+                self.absorb.setColumnHidden(c, c == len(cols) - 1 and step is None)
             _fit_height(self.absorb)
             self.absorb_note.setText("Each transient state is left for good sooner or later: the probability of "
                                      "ending in each closed class, and the expected steps until a closed class "
