@@ -122,6 +122,7 @@ class SimulationThread(QThread):
         self.request = request
         self.run_id = request.run_id
         self.mode = mode or default_mode()
+        self._mode_lock = threading.Lock()
         self._paused = bool(request.paused)
         self._cancel_at: float | None = None
         self.worker: WorkerProcess | None = None
@@ -133,10 +134,11 @@ class SimulationThread(QThread):
 
     # -- controls (any thread) -----------------------------------------------------
     def _post(self, msg: tuple) -> None:
-        if self.mode == "thread":
-            self._control.send(msg)
-        else:
-            self._outbox.put(msg)
+        with self._mode_lock:
+            if self.mode == "thread":
+                self._control.send(msg)
+            else:
+                self._outbox.put(msg)
 
     def pause(self) -> None:
         self._paused = True
@@ -165,24 +167,31 @@ class SimulationThread(QThread):
 
     # -- the run ------------------------------------------------------------------------
     def run(self) -> None:  # noqa: D401 - QThread's entry point
-        rid = self.run_id
-        if self.mode == "thread":
+        if self.mode == "process":
             try:
-                run_loop(self.request, self._emit, self._control)
-            except LongrunError as exc:
-                self.failed.emit(rid, str(exc))
-            except MemoryError:
-                self.failed.emit(rid, "not enough memory for this run; use fewer replicates")
-            except Exception:  # a bug must not take the app down; it is shown in the panel
-                self.failed.emit(rid, "internal error:\n" + traceback.format_exc(limit=8))
-            return
+                worker = POOL.acquire()
+            except (OSError, RuntimeError, ValueError):
+                # no worker process on this system: run here (the GUI is then less smooth, the numbers the same)
+                with self._mode_lock:
+                    self.mode = "thread"
+                    while True:
+                        try:
+                            self._control.send(self._outbox.get_nowait())
+                        except queue.Empty:
+                            break
+            else:
+                self.worker = worker
+                self._relay(worker)
+                return
+        rid = self.run_id
         try:
-            worker = POOL.acquire()
-        except (OSError, RuntimeError, ValueError) as exc:
-            self.failed.emit(rid, f"the simulation engine could not start: {exc}")
-            return
-        self.worker = worker
-        self._relay(worker)
+            run_loop(self.request, self._emit, self._control)
+        except LongrunError as exc:
+            self.failed.emit(rid, str(exc))
+        except MemoryError:
+            self.failed.emit(rid, "not enough memory for this run; use fewer replicates")
+        except Exception:  # a bug must not take the app down; it is shown in the panel
+            self.failed.emit(rid, "internal error:\n" + traceback.format_exc(limit=8))
 
     def _relay(self, worker: WorkerProcess) -> None:
         rid = self.run_id

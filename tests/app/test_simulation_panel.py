@@ -437,3 +437,18 @@ def test_changing_the_plan_during_a_run_offers_a_restart(qtbot, make_panels):
     ws.run_plan.update(speed=10.0)  # speed applies to the running run: no restart needed
     assert not sp.run_button.isEnabled()
     sp.reset()
+
+
+def test_without_a_worker_process_the_run_goes_on_in_a_thread(qtbot, make_panels, monkeypatch):
+    from app import simulation_worker
+
+    def no_process(self):
+        raise OSError("no processes here")
+
+    monkeypatch.setattr(simulation_worker.WorkerPool, "acquire", no_process)
+    ws, p = make_panels(_chain("pump_wear.json"))
+    sp = p["simulation"]
+    ws.run_plan.update(replicates=200, steps=100, seed=3)
+    sp.run()
+    _finish(qtbot, sp)
+    assert sp.report.result.step == 100
