@@ -1077,6 +1077,11 @@ class PlanForm(QWidget):
             x0, x1 = float(lx.min()), float(lx.max())
         else:
             x0, x1 = 0.0, math.log10(max(10, c.plan.steps * 10))
+        if c.min_steps is not None:  # the label goes on the side of the line that has room
+            at = (math.log10(max(1, c.min_steps)) - x0) / max(1e-9, max(x1, x0 + 1) - x0)
+            side = (1, 0.5) if at > 0.6 else (0, 0.5)
+            self.min_line.label.anchors = [side, side]
+            self.min_line.label.updatePosition()
         it = self.chart.item
         it.setXRange(x0, max(x1, x0 + 1), padding=0.02)
         it.setYRange(max(lo_y, -8), hi_y + 0.05, padding=0)
