@@ -26,7 +26,6 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (
-    QFormLayout,
     QFrame,
     QHBoxLayout,
     QHeaderView,
@@ -40,7 +39,7 @@ from PySide6.QtWidgets import (
 )
 
 from . import palette as pal
-from .panels import PanelSpec, Workspace
+from .panels import PanelSpec, Workspace, fact_rows
 from .plan_form import PlanFields, fmt_p, preload_core, shared_plan, table_filling
 from .plot_export import ChartBox, nice_upper, state_ticks
 
@@ -216,20 +215,10 @@ class LongRunPanel(QWidget):
         self.absorb_title = _section("Leaving the transient states")
         self.absorb = _table(["From", "Steps to absorption", "in real time"], "longrunAbsorption")
         self.absorb_note = _note()
-        self.times = QFormLayout()
-        self.times.setLabelAlignment(Qt.AlignmentFlag.AlignRight)
-        self.times.setHorizontalSpacing(10)
-        self.times.setVerticalSpacing(4)
-        self.time_labels: dict[str, QLabel] = {}
-        for key, text in (("mixing", "Mixing time"), ("relaxation", "Relaxation time"),
-                          ("gap", "Spectral gap"), ("kemeny", "Kemeny's constant"),
-                          ("reversible", "Detailed balance")):
-            lab = QLabel("—")
-            lab.setObjectName(f"longrunTime_{key}")
-            lab.setWordWrap(True)
-            lab.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
-            self.time_labels[key] = lab
-            self.times.addRow(text, lab)
+        self.times, self.time_labels = fact_rows(
+            (("mixing", "Mixing time"), ("relaxation", "Relaxation time"),
+             ("gap", "Spectral gap"), ("kemeny", "Kemeny's constant"),
+             ("reversible", "Detailed balance")), prefix="longrunTime_")
         self.interval_note = _note()
         self.interval_note.setObjectName("longrunIntervals")
         self.caution = _note("Results describe the model, not the world; decisions on money, maintenance or "

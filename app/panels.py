@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Callable
 
 from PySide6.QtCore import Qt
-from PySide6.QtWidgets import QWidget
+from PySide6.QtWidgets import QFormLayout, QLabel, QWidget
 
 if TYPE_CHECKING:  # pragma: no cover
     from .analysis_service import AnalysisService
@@ -90,3 +90,22 @@ def panel_specs(modules: tuple[str, ...] | None = None) -> list[PanelSpec]:
         mod = importlib.import_module(name)
         specs.extend(getattr(mod, "PANELS", ()))
     return specs
+
+
+def fact_rows(items, *, prefix: str, vertical_spacing: int = 4) -> tuple[QFormLayout, dict[str, QLabel]]:
+    """A right-aligned form of read-only facts: one selectable, word-wrapped label per
+    ``(key, caption)`` in ``items``, named ``f"{prefix}{key}"`` (showing "—" until filled).
+    Returns the layout and ``{key: label}``."""
+    form = QFormLayout()
+    form.setLabelAlignment(Qt.AlignmentFlag.AlignRight)
+    form.setHorizontalSpacing(10)
+    form.setVerticalSpacing(vertical_spacing)
+    labels: dict[str, QLabel] = {}
+    for key, caption in items:
+        lab = QLabel("—")
+        lab.setObjectName(f"{prefix}{key}")
+        lab.setWordWrap(True)
+        lab.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        labels[key] = lab
+        form.addRow(caption, lab)
+    return form, labels

@@ -38,7 +38,6 @@ from PySide6.QtWidgets import (
     QAbstractSpinBox,
     QComboBox,
     QDoubleSpinBox,
-    QFormLayout,
     QFrame,
     QGridLayout,
     QHBoxLayout,
@@ -58,7 +57,7 @@ from PySide6.QtWidgets import (
 from core.errors import LongrunError
 
 from . import palette as pal
-from .panels import PanelSpec, Workspace
+from .panels import PanelSpec, Workspace, fact_rows
 from .simulation_worker import SIM_MAX_REPLICATES, SIM_MAX_STEPS, PlanValues, ResolvedPlan, resolve_plan
 
 __all__ = [
@@ -862,20 +861,10 @@ class PlanForm(QWidget):
         buttons.addWidget(self.recommend_button)
         buttons.addStretch(1)
 
-        facts = QFormLayout()
-        facts.setLabelAlignment(Qt.AlignmentFlag.AlignRight)
-        facts.setHorizontalSpacing(10)
-        facts.setVerticalSpacing(3)
-        self.fact_labels: dict[str, QLabel] = {}
-        for key, text in (("tv", "Estimate vs long run"), ("min_steps", "Smallest sound run"),
-                          ("min_burn_in", "Smallest sound burn-in"), ("noise", "Noise at R replicates"),
-                          ("samples", "Kept per replicate")):
-            lab = QLabel("—")
-            lab.setObjectName(f"planFact_{key}")
-            lab.setWordWrap(True)
-            lab.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
-            self.fact_labels[key] = lab
-            facts.addRow(text, lab)
+        facts, self.fact_labels = fact_rows(
+            (("tv", "Estimate vs long run"), ("min_steps", "Smallest sound run"),
+             ("min_burn_in", "Smallest sound burn-in"), ("noise", "Noise at R replicates"),
+             ("samples", "Kept per replicate")), prefix="planFact_", vertical_spacing=3)
 
         self.table = QTableWidget(0, 5)
         self.table.setObjectName("planTable")
