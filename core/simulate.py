@@ -37,7 +37,7 @@ row sums to 1 exactly).  The alias construction (Walker 1977; Vose 1991, in
 exact integers, vectorised over rows) splits the row into its ``L`` cells,
 each owned by one state ("pure") or shared by two ("mixed": a threshold sends
 part of the cell to one state and the rest to the other).  At most ``k - 1``
-cells of a row with ``k`` successors are mixed.  Two layouts
+cells of a row with ``k`` successors are mixed.  Three layouts
 (:class:`CellTable`):
 
 * ``split`` (sparse rows, small chains; ``U = 2**64``, ``L`` about ``32 k``):
@@ -51,8 +51,19 @@ cells of a row with ``k`` successors are mixed.  Two layouts
   ``b`` bits pick the cell and whose value is compared with the cell's
   threshold; next offset ``= miss + (word < cut) * delta``, no branch.
   Probabilities are reproduced to ``2**-64``.
+* ``direct`` (rows reaching nearly every state, up to 4096 states; Walker's
+  own layout): ``L = 2**b >= n`` cells per row and cell ``c`` belongs to state
+  ``c`` below a threshold (``64 - b`` bits) and to one alias state above
+  it.  A step takes 16 random bits per replicate, as a split table does: the
+  top ``b`` pick the cell, the other ``g = 16 - b`` are compared with the top
+  ``g`` bits of its threshold, held beside the alias in a two-byte record (a
+  dense chain of 1000 states samples from 2 MiB instead of the 16 of a wide
+  table).  The few replicates that tie there (one in ``2**g``) take 48 more
+  bits from a coin and are settled with the full threshold.  Probabilities
+  are reproduced to ``2**-64``: the masses of a wide table with as many
+  cells.
 
-Either way a step is a handful of in-place passes over ``R`` numbers and one
+Each way a step is a handful of in-place passes over ``R`` numbers and one
 table gather; a probability of ``1e-12`` is kept, not rounded away.  Up to
 :data:`SCALAR_REPLICATES` replicates, a scalar kernel (a Python loop over the
 steps) replaces the vectorised one, whose per-call cost dominates there.
@@ -60,8 +71,9 @@ steps) replaces the vectorised one, whose per-call cost dominates there.
 Random streams
 --------------
 ``numpy.random.SeedSequence(seed).spawn(3)`` gives three independent PCG64
-streams: start states, cell bits, mixed-cell coins.  Step ``t`` always consumes
-the same number of words of the cell stream (``ceil(R/4)`` or ``R``), and the
+streams: start states, cell bits, coins (mixed cells, ties).  Step ``t`` always
+consumes the same number of words of the cell stream (``ceil(R/4)``, or ``R``
+for a wide table), and the
 coin stream is read in (step, replicate) order, so for a given chain the
 results are bit-identical whatever the chunk size, the snapshot interval or
 the kernel (vector or scalar) used.
@@ -131,6 +143,10 @@ SCALAR_REPLICATES = 16
 _BLOCK_ELEMENTS = 1 << 18
 #: Bytes a cell table may take before fewer cells per row are used.
 _TABLE_BUDGET = 1 << 20
+#: Share of mixed cells up to which a split table is used before any other, and at all.
+_SPLIT_CHEAP, _SPLIT_MIXED = 0.04, 0.15
+#: Bytes a direct table may take even when the alternative is smaller.
+_DIRECT_BUDGET = 16 << 20
 
 
 # ---------------------------------------------------------------------------
@@ -142,13 +158,15 @@ RECORD = np.dtype([("cut", np.uint64), ("hit", np.int32), ("miss", np.int32)])
 #: Cell of a wide table: a word below ``cut`` goes to ``miss + delta``, else to ``miss``
 #: (so the next offset is ``miss + (word < cut) * delta``, without a branch).
 WIDE_RECORD = np.dtype([("cut", np.uint64), ("miss", np.int32), ("delta", np.int32)])
+#: Largest cells-per-row exponent of a direct table (its records keep ``16 - bits >= 4`` threshold bits).
+DIRECT_MAX_BITS = 12
 
 
 @dataclass(frozen=True, eq=False)
 class CellTable:
     """Sampling tables of a transition matrix (see module notes).
 
-    Two layouts, chosen by :func:`cell_table`:
+    Three layouts, chosen by :func:`cell_table`:
 
     ``"split"`` (few mixed cells; the default for sparse rows and small chains)
         16 random bits pick the cell; ``cells`` holds the next row offset
@@ -160,6 +178,14 @@ class CellTable:
         one 64-bit word per replicate and step: its top ``bits`` bits pick the
         cell and the whole word is compared with the cell's absolute ``cut``;
         every cell is a record (pure cells have ``delta == 0``).
+    ``"direct"`` (dense rows; Walker's own layout, ``L >= n``)
+        16 random bits: the top ``bits`` pick the cell ``c``, which belongs
+        to state ``c`` when its ``64 - bits``-bit fraction is below
+        ``exact[i * L + c]`` and to its alias otherwise; ``cells`` holds
+        ``uint16`` records ``alias << g | coarse`` (``g = 16 - bits``, coarse
+        = the threshold's top ``g`` bits, saturated), compared with the other
+        ``g`` random bits; on a tie the fraction's last 48 bits are the top
+        48 of a coin.
 
     Attributes
     ----------
@@ -168,11 +194,14 @@ class CellTable:
         ``L = 2**bits`` equally likely cells per row.
     kind : {"split", "wide"}
     cells : (n * L,) ndarray
-        ``int32`` (split) or :data:`WIDE_RECORD` (wide); entry ``i * L + c`` is
-        cell ``c`` of row ``i``.
+        ``int32`` (split), :data:`WIDE_RECORD` (wide) or ``uint16`` (direct);
+        entry ``i * L + c`` is cell ``c`` of row ``i``.
     mixed : (M,) ndarray of RECORD
         Mixed cells of a split table, in reverse order of creation (so that the
-        marker ``~m`` indexes record ``m`` as a negative index); empty for wide.
+        marker ``~m`` indexes record ``m`` as a negative index); empty otherwise.
+    exact : (n * L,) ndarray of uint64
+        Thresholds of a direct table, ``0 .. 2**(64 - bits)`` (all of the
+        cell belongs to its own state at the top); empty otherwise.
     """
 
     n: int
@@ -180,6 +209,7 @@ class CellTable:
     kind: str
     cells: np.ndarray
     mixed: np.ndarray
+    exact: np.ndarray = field(default_factory=lambda: _frozen(np.zeros(0, dtype=np.uint64)))
 
     @property
     def L(self) -> int:
@@ -191,15 +221,23 @@ class CellTable:
         return 64 if self.kind == "split" else 64 - self.bits
 
     @property
+    def coarse_bits(self) -> int:
+        """Threshold bits in a direct table's records (0 for other layouts)."""
+        return 16 - self.bits if self.kind == "direct" else 0
+
+    @property
     def mixed_fraction(self) -> float:
         """Share of the cells that are shared by two states."""
         if self.kind == "split":
             return float(self.mixed.size) / float(self.cells.size)
+        if self.kind == "direct":
+            shared = (self.exact > 0) & (self.exact < np.uint64(1 << self.unit_bits))
+            return float(np.count_nonzero(shared)) / float(self.cells.size)
         return float(np.count_nonzero(self.cells["delta"])) / float(self.cells.size)
 
     @property
     def nbytes(self) -> int:
-        return int(self.cells.nbytes + self.mixed.nbytes)
+        return int(self.cells.nbytes + self.mixed.nbytes + self.exact.nbytes)
 
     def masses(self) -> list[dict[int, int]]:
         """Exact integer mass of every transition.
@@ -214,6 +252,13 @@ class CellTable:
         for i in range(self.n):
             row: dict[int, int] = {}
             block = self.cells[i * L:(i + 1) * L]
+            if self.kind == "direct":
+                g = self.coarse_bits
+                for c, (rec, q) in enumerate(zip(block.tolist(), self.exact[i * L:(i + 1) * L].tolist())):
+                    row[c] = row.get(c, 0) + q
+                    row[rec >> g] = row.get(rec >> g, 0) + U - q
+                out.append({j: w for j, w in row.items() if w})
+                continue
             if self.kind == "split":
                 recs = [(U, int(c), int(c)) if c >= 0 else tuple(int(v) for v in self.mixed[c].tolist())
                         for c in block.tolist()]
@@ -275,28 +320,47 @@ def _split_bits(n: int, kmax: int) -> int:
 
 
 def _plan_table(P: np.ndarray) -> tuple[str, int]:
-    """(kind, bits) for P: split unless more than ~15% of its cells would be mixed."""
+    """(kind, bits) for P.
+
+    A split table when at most ~4% of its cells would be mixed (the cheapest
+    step); otherwise a direct table when there is one (``n <= 4096``) and it
+    takes at most 16 MiB or no more than the alternative, which is a split
+    table up to ~15% mixed cells and a wide one beyond.  (Measured in
+    tests/benchmarks/simulate.py: split steps are fastest with few mixed
+    cells, direct steps are nearly as fast whatever the rows.)
+    """
     n = P.shape[0]
     k = (P > 0).sum(axis=1)
     kmax = int(k.max())
-    if kmax > 1 << 16:
-        return "wide", _min_bits(kmax)
-    b = _split_bits(n, kmax)
-    mixed_bound = float((k - 1).sum()) / float(n << b)
-    if mixed_bound > 0.15 or b > 16:
-        return "wide", _min_bits(kmax)
-    return "split", b
+    alt: tuple[str, int] = ("wide", _min_bits(kmax))
+    if kmax <= 1 << 16:
+        b = _split_bits(n, kmax)
+        mixed_bound = float((k - 1).sum()) / float(n << b)
+        if mixed_bound <= _SPLIT_CHEAP:
+            return "split", b
+        if mixed_bound <= _SPLIT_MIXED:
+            alt = ("split", b)
+    bd = _min_bits(n)
+    if bd <= DIRECT_MAX_BITS:
+        direct = _table_bytes("direct", n, bd, 0)
+        if direct <= max(_DIRECT_BUDGET, _table_bytes(alt[0], n, alt[1], int(k.sum()))):
+            return "direct", bd
+    return alt
+
+
+def _table_bytes(kind: str, n: int, bits: int, nnz: int) -> int:
+    if kind == "split":
+        return n * (4 << bits) + 16 * nnz
+    if kind == "direct":
+        return n * (10 << bits)
+    return n * (16 << bits)
 
 
 def table_bytes(P) -> int:
     """Bytes of the cell table :func:`cell_table` would build for ``P`` (an upper bound)."""
     P = np.asarray(P)
-    n = P.shape[0]
     kind, b = _plan_table(P)
-    nnz = int((P > 0).sum())
-    if kind == "split":
-        return n * (4 << b) + 16 * nnz
-    return n * (16 << b)
+    return _table_bytes(kind, P.shape[0], b, int((P > 0).sum()))
 
 
 def _build_work(n: int, kmax: int, bits: int, kind: str) -> int:
@@ -310,6 +374,12 @@ def _build_work(n: int, kmax: int, bits: int, kind: str) -> int:
     matrix with two masks of it (10 bytes per entry).  Measured peaks stay below
     this (tests/core/test_resource_guards.py).
     """
+    if kind == "direct":
+        # per block of nb rows with nb * L about 2**20: the padded rows and their masses, the two
+        # stacks, the thresholds and aliases (some 13 arrays of 8 bytes per cell), and the records
+        L = 1 << bits
+        nb = min(n, max(1, (1 << 20) // L))
+        return 10 * n * n + nb * L * 120
     nb = min(n, max(1, (1 << 20) // max(1, kmax)))
     per_cell = 32 if kind == "wide" else 12
     return 10 * n * n + nb * (10 * n + 320 * kmax + per_cell * (1 << bits))
@@ -367,19 +437,24 @@ def cell_table(P, *, bits: int | None = None, kind: str | None = None) -> CellTa
     kmax = int(support.sum(axis=1).max())
     auto_kind, auto_bits = _plan_table(P)
     kind = auto_kind if kind is None else kind
-    if kind not in ("split", "wide"):
-        raise ValueError(f"kind must be 'split' or 'wide', not {kind!r}")
+    if kind not in ("split", "wide", "direct"):
+        raise ValueError(f"kind must be 'split', 'wide' or 'direct', not {kind!r}")
     if bits is None:
-        bits = auto_bits if kind == auto_kind else (_split_bits(n, kmax) if kind == "split" else _min_bits(kmax))
+        bits = auto_bits if kind == auto_kind else {"split": _split_bits(n, kmax), "wide": _min_bits(kmax),
+                                                    "direct": _min_bits(n)}[kind]
     bits = int(bits)
-    hi = 16 if kind == "split" else 30
+    hi = {"split": 16, "wide": 30, "direct": DIRECT_MAX_BITS}[kind]
     if not 1 <= bits <= hi:
         raise ValueError(f"bits must be between 1 and {hi} for a {kind} table, not {bits}")
     if bits < _min_bits(kmax):
         raise ValueError(f"bits={bits} gives {1 << bits} cells per row, fewer than the {kmax} successors of some state")
     L = 1 << bits
+    if kind == "direct" and L < n:
+        raise ValueError(f"bits={bits} gives {L} cells per row; a direct table needs one per state ({n})")
     if n * L >= 2**31:
         raise ValueError(f"a table of {n} x {L} cells does not fit 32-bit offsets")
+    if kind == "direct":
+        return _direct_table(P, bits)
     ub = 64 if kind == "split" else 64 - bits
     cells = np.empty(n * L, dtype=np.int32 if kind == "split" else WIDE_RECORD)
     records = []
@@ -420,6 +495,103 @@ def cell_table(P, *, bits: int | None = None, kind: str | None = None) -> CellTa
 _MIXED = np.dtype([("row", np.int64), ("q", np.uint64), ("hit", np.int64), ("miss", np.int64)])
 
 
+def _quantise(p: np.ndarray, bits: int, ub: int) -> tuple[np.ndarray, np.ndarray]:
+    """Exact integer masses of the rows of ``p``: ``a * U + r`` with ``U = 2**ub``.
+
+    ``a`` (int64) counts whole cells and ``r < U`` (uint64) the rest; each
+    entry is ``round(p * 2**(bits + ub))`` and the largest entry of each row
+    (the first, on ties) absorbs the rounding of the row sum, so that every
+    row sums to ``2**bits * U`` exactly.
+    """
+    nb = p.shape[0]
+    L = 1 << bits
+    U = 1 << ub
+    scaled = p * L
+    a = np.floor(scaled).astype(np.int64)
+    r = np.rint(np.ldexp(scaled - a, ub)).astype(np.uint64)
+    # exact row sums, then the largest entry of each row absorbs the difference
+    lo32 = np.uint64(0xFFFFFFFF)
+    sum_a = a.sum(axis=1).tolist()
+    sum_hi = (r >> np.uint64(32)).sum(axis=1).tolist()
+    sum_lo = (r & lo32).sum(axis=1).tolist()
+    big = np.argmax(p, axis=1)
+    rows = np.arange(nb)
+    a_big = a[rows, big].tolist()
+    r_big = r[rows, big].tolist()
+    for i in range(nb):
+        diff = L * U - (sum_a[i] * U + (sum_hi[i] << 32) + sum_lo[i])
+        w = a_big[i] * U + r_big[i] + diff
+        if w <= 0:  # pragma: no cover - impossible for rows summing to 1 +- 1e-9
+            raise ValueError(f"a row of P cannot be normalised (row sum {p[i].sum()!r})")
+        a_big[i], r_big[i] = divmod(w, U)
+    a[rows, big] = a_big
+    r[rows, big] = np.array(r_big, dtype=np.uint64)
+    return a, r
+
+
+def _walker_block(Pb: np.ndarray, bits: int) -> tuple[np.ndarray, np.ndarray]:
+    """Walker's own layout for a block of rows, exactly, vectorised over the rows.
+
+    Returns ``(Q, alias)``, both ``(nb, L)``: cell ``c`` of a row goes to
+    state ``c`` for the ``Q[c]`` lowest of its ``U = 2**(64 - bits)`` units
+    and to ``alias[c]`` for the rest.  Vose's (1991) pairing: each round,
+    every unfinished row pops one item below one cell ("small"; the padding
+    states ``n .. L-1`` and states that cannot be reached have mass 0), gives
+    it its own cell topped up by the row's top item of at least one cell
+    ("large"), and moves that donor to the small stack once it is below one
+    cell.  When no small item is left, the masses being exact, every large
+    item left has exactly one cell, all its own.
+    """
+    nb, n = Pb.shape
+    L = 1 << bits
+    ub = 64 - bits
+    U = 1 << ub
+    p = np.zeros((nb, L))
+    p[:, :n] = Pb
+    a, r = _quantise(p, bits, ub)
+    del p
+    Q = np.zeros((nb, L), dtype=np.uint64)
+    alias = np.broadcast_to(np.arange(L, dtype=np.int64), (nb, L)).copy()
+    is_small = a == 0
+    ss = np.argsort(~is_small, axis=1, kind="stable").astype(np.int64)
+    ls = np.argsort(is_small, axis=1, kind="stable").astype(np.int64)
+    ns = is_small.sum(axis=1).astype(np.int64)
+    nl = L - ns
+    del is_small
+    Uu = np.uint64(U)
+    while True:
+        act = np.flatnonzero((ns > 0) & (nl > 0))
+        if act.size == 0:
+            break
+        ns[act] -= 1
+        sp = ss[act, ns[act]]
+        lp = ls[act, nl[act] - 1]
+        rs = r[act, sp]
+        Q[act, sp] = rs
+        alias[act, sp] = lp
+        # the donor gives (1 cell - small): (a, r) + rs - U, exact (r + rs < 2U <= 2**64)
+        tot = r[act, lp] + rs
+        carry = tot >= Uu
+        r[act, lp] = np.where(carry, tot - Uu, tot)
+        anew = a[act, lp] - 1 + carry
+        a[act, lp] = anew
+        became = anew == 0
+        br = act[became]
+        nl[br] -= 1
+        ss[br, ns[br]] = lp[became]
+        ns[br] += 1
+    if ns.any():  # pragma: no cover - the masses are exact, so no small item is left unpaired
+        raise AssertionError("alias construction left a cell unfilled")
+    # what is left of the large stacks: exactly one whole cell each, their own
+    left = np.arange(L)[None, :] < nl[:, None]
+    rows = np.nonzero(left)[0]
+    items = ls[left]
+    if np.any(a[rows, items] != 1) or np.any(r[rows, items] != 0):  # pragma: no cover - exact masses
+        raise AssertionError("alias construction left mass over")
+    Q[rows, items] = Uu
+    return Q, alias
+
+
 def _alias_block(Pb: np.ndarray, bits: int, ub: int):
     """Exact alias construction for a block of rows, vectorised over the rows.
 
@@ -446,26 +618,7 @@ def _alias_block(Pb: np.ndarray, bits: int, ub: int):
     valid = np.arange(K)[None, :] < k[:, None]
     items = np.where(valid, order, -1)
     p = np.where(valid, np.take_along_axis(Pb, order, axis=1), 0.0)
-    scaled = p * L
-    a = np.floor(scaled).astype(np.int64)
-    r = np.rint(np.ldexp(scaled - a, ub)).astype(np.uint64)
-    # exact row sums, then the largest entry of each row absorbs the difference
-    lo32 = np.uint64(0xFFFFFFFF)
-    sum_a = a.sum(axis=1).tolist()
-    sum_hi = (r >> np.uint64(32)).sum(axis=1).tolist()
-    sum_lo = (r & lo32).sum(axis=1).tolist()
-    big = np.argmax(p, axis=1)
-    rows = np.arange(nb)
-    a_big = a[rows, big].tolist()
-    r_big = r[rows, big].tolist()
-    for i in range(nb):
-        diff = L * U - (sum_a[i] * U + (sum_hi[i] << 32) + sum_lo[i])
-        w = a_big[i] * U + r_big[i] + diff
-        if w <= 0:  # pragma: no cover - impossible for rows summing to 1 +- 1e-9
-            raise ValueError(f"a row of P cannot be normalised (row sum {p[i].sum()!r})")
-        a_big[i], r_big[i] = divmod(w, U)
-    a[rows, big] = a_big
-    r[rows, big] = np.array(r_big, dtype=np.uint64)
+    a, r = _quantise(p, bits, ub)
     # stacks of small (< 1 cell) and large (>= 1 cell) items, as column positions
     is_small = valid & (a == 0) & (r > 0)
     is_large = valid & (a >= 1)
@@ -542,6 +695,23 @@ def _alias_block(Pb: np.ndarray, bits: int, ub: int):
     if int(cnt.sum()) != nb * L:  # pragma: no cover - every row has exactly L cells
         raise AssertionError("alias construction produced the wrong number of cells")
     return mixed, lab, cnt
+
+
+def _direct_table(P: np.ndarray, bits: int) -> CellTable:
+    n = P.shape[0]
+    L = 1 << bits
+    g = 16 - bits
+    cells = np.empty(n * L, dtype=np.uint16)
+    exact = np.empty(n * L, dtype=np.uint64)
+    step = max(1, (1 << 20) // L)  # rows per block: bounded work arrays
+    for lo in range(0, n, step):
+        hi = min(n, lo + step)
+        Q, alias = _walker_block(P[lo:hi], bits)
+        coarse = np.minimum(Q >> np.uint64(64 - bits - g), np.uint64((1 << g) - 1))
+        cells[lo * L:hi * L] = ((alias.astype(np.uint16) << np.uint16(g)) | coarse.astype(np.uint16)).ravel()
+        exact[lo * L:hi * L] = Q.ravel()
+    return CellTable(n=n, bits=bits, kind="direct", cells=_frozen(cells), mixed=_frozen(np.zeros(0, dtype=RECORD)),
+                     exact=_frozen(exact))
 
 
 def _frozen(a: np.ndarray) -> np.ndarray:
@@ -1009,8 +1179,11 @@ class ReplicateSimulation:
         self._f = np.empty(R, dtype=np.int64)
         self._neg = np.empty(R, dtype=bool)
         # cell-stream words per step: 16 bits per replicate (split) or 64 (wide)
-        self._W = (R + 3) // 4 if self.table.kind == "split" else R
+        self._W = R if self.table.kind == "wide" else (R + 3) // 4
         self._rec = np.empty(R, dtype=WIDE_RECORD) if self.table.kind == "wide" else None
+        # direct tables: records, cells, coarse fractions and thresholds, their difference (as int16),
+        # aliases and the next states (all R-long)
+        self._u16 = np.empty((7, R), dtype=np.uint16) if self.table.kind == "direct" else None
         self._wide_fields = None  # contiguous fields for the scalar wide kernel
         self._block = max(1, _BLOCK_ELEMENTS // R)
         self._rows = np.empty((min(self._block, self.kept_planned), R), dtype=np.int64)
@@ -1178,6 +1351,8 @@ class ReplicateSimulation:
         R = self.replicates
         tab = self.table
         b = tab.bits
+        if tab.kind == "direct":
+            return self._direct_block(words, rows)
         wide = tab.kind == "wide"
         cells, mixed = tab.cells, tab.mixed
         off, f, neg, rec = self._off, self._f, self._neg, self._rec
@@ -1220,6 +1395,63 @@ class ReplicateSimulation:
                 np.right_shift(off[:P_], b, out=paths[:, i])
         return paths
 
+    def _direct_block(self, words: np.ndarray, rows: list[int]) -> np.ndarray:
+        """The vector kernel on a direct table (see :class:`CellTable`), step by step.
+
+        Per step and replicate, 16 random bits: their top ``b`` bits pick the
+        cell ``c`` (a uint16 record), the other ``g`` are the coarse fraction
+        ``fq``, compared with the record's coarse threshold ``rq``.  Below it
+        the cell's own state wins, above it the alias (``m = (fq - rq) >> 15``
+        is all ones where ``c`` wins: ``next = alias ^ ((alias ^ c) & m)``, no
+        branch).  On a tie, the fraction's remaining 48 bits come from a coin
+        and the exact threshold decides.
+        """
+        R = self.replicates
+        tab = self.table
+        b = tab.bits
+        g = tab.coarse_bits
+        cells, exact = tab.cells, tab.exact
+        off = self._off
+        f = self._f.view(np.int32)[:R]  # cell indices fit int32 (n * L < 2**31)
+        rec, c16, fq, rq, dq, al, nxt = self._u16
+        dqs = dq.view(np.int16)
+        eq = self._neg
+        coins = self._coins
+        g16, gm = np.uint16(g), np.uint16((1 << g) - 1)
+        s15, s16, s48, b32 = np.int16(15), np.uint64(16), np.uint64(48), np.int32(b)
+        kept = set(rows)
+        out_rows = self._rows
+        P_ = self.n_paths
+        paths = np.empty((P_, words.shape[0]), dtype=np.int32)
+        j = 0
+        for i in range(words.shape[0]):
+            v = words[i].view(np.uint16)[:R]  # c << g | fq
+            np.right_shift(v, g16, out=c16)
+            np.add(off, c16, out=f)
+            np.take(cells, f, out=rec, mode="wrap")
+            np.bitwise_and(v, gm, out=fq)
+            np.bitwise_and(rec, gm, out=rq)
+            np.subtract(fq, rq, out=dq)
+            np.equal(dqs, 0, out=eq)
+            np.right_shift(dqs, s15, out=dqs)
+            np.right_shift(rec, g16, out=al)
+            np.bitwise_xor(al, c16, out=nxt)
+            np.bitwise_and(nxt, dq, out=nxt)
+            np.bitwise_xor(nxt, al, out=nxt)
+            tie = np.flatnonzero(eq)
+            if tie.size:
+                frac = (fq.take(tie).astype(np.uint64) << s48) | (coins.take(tie.size) >> s16)
+                own = tie[frac < exact.take(f.take(tie))]
+                nxt[own] = c16[own]
+            np.copyto(off, nxt)
+            np.left_shift(off, b32, out=off)  # in int32: state << b overflows 16 bits
+            if i in kept:
+                np.copyto(out_rows[j], nxt)
+                j += 1
+            if P_:
+                paths[:, i] = nxt[:P_]
+        return paths
+
     def _scalar_block(self, words: np.ndarray, rows: list[int]) -> np.ndarray:
         R = self.replicates
         tab = self.table
@@ -1227,7 +1459,25 @@ class ReplicateSimulation:
         mb = words.shape[0]
         off = self._off.tolist()
         hist: list[list[int]] = []
-        if tab.kind == "split":
+        if tab.kind == "direct":
+            cells = memoryview(tab.cells)
+            exact = memoryview(tab.exact)
+            g = tab.coarse_bits
+            gm = (1 << g) - 1
+            coin = self._coins.next
+            for vt in words.view(np.uint16)[:, :R].tolist():
+                for r in range(R):
+                    v = vt[r]
+                    c = v >> g
+                    x = off[r] + c
+                    rec = cells[x]
+                    fq, rq = v & gm, rec & gm
+                    if fq < rq or (fq == rq and ((fq << 48) | (coin() >> 16)) < exact[x]):
+                        off[r] = c << b
+                    else:
+                        off[r] = (rec >> g) << b
+                hist.append(off[:])
+        elif tab.kind == "split":
             v = words.view(np.uint16)[:, :R]
             if b < 16:
                 v = v >> np.uint16(16 - b)

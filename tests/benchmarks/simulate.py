@@ -89,8 +89,8 @@ def main(argv):
              ("sparse n=1000 (10/row)", sparse(1000, 10)), ("dense n=1000", dense(1000))]
     print(f"replicates R = {R:,}, steps per measurement T = {T}, best of {rounds} interleaved rounds")
     print("baseline (a): numpy.random.Generator(PCG64).random(out=float64 array of R) once per step;")
-    print("engine: PCG64 raw 64-bit words via BitGenerator.random_raw (split tables: 16 bits per")
-    print("replicate-step plus one word per mixed-cell hit; wide tables: one word per replicate-step)")
+    print("engine: PCG64 raw 64-bit words via BitGenerator.random_raw (split and direct tables: 16 bits")
+    print("per replicate-step plus one word per mixed cell or tie; wide tables: one word per replicate-step)")
     print()
     results = []
     for name, P in cases:

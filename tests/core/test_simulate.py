@@ -46,14 +46,14 @@ def _alpha_per(tests: int, alpha: float = 1e-6) -> float:
 # cell tables: exact masses
 
 
-@pytest.mark.parametrize("kind", ["split", "wide"])
+@pytest.mark.parametrize("kind", ["split", "wide", "direct"])
 def test_dyadic_probabilities_are_reproduced_exactly(kind):
     P = np.array([[0.5, 0.25, 0.125, 0.125], [0, 1, 0, 0], [0.75, 0, 0, 0.25], [2**-40, 0, 0, 1 - 2**-40]])
     t = cell_table(P, kind=kind)
     assert np.array_equal(t.realised_matrix(), P)
 
 
-@pytest.mark.parametrize("kind", ["split", "wide"])
+@pytest.mark.parametrize("kind", ["split", "wide", "direct"])
 @settings(max_examples=25)
 @given(seed=st.integers(0, 10**6), n=st.integers(1, 12), density=st.floats(0.05, 1.0))
 def test_masses_are_nearest_integers_and_rows_sum_exactly(kind, seed, n, density):
@@ -78,7 +78,7 @@ def test_masses_are_nearest_integers_and_rows_sum_exactly(kind, seed, n, density
 def test_tiny_probability_is_kept():
     # A trap left with probability 1e-12 must not be rounded away
     P = np.array([[1 - 1e-12, 1e-12], [0.5, 0.5]])
-    for kind in ("split", "wide"):
+    for kind in ("split", "wide", "direct"):
         R = cell_table(P, kind=kind).realised_matrix()
         assert R[0, 1] == pytest.approx(1e-12, rel=1e-9)
 
@@ -90,6 +90,80 @@ def test_table_rejects_bad_matrices():
         cell_table([[1.5, -0.5], [0.5, 0.5]])
     with pytest.raises(ValueError, match="fewer than"):
         cell_table(np.full((4, 4), 0.25), bits=1)
+
+
+def test_dense_rows_get_a_direct_table_and_it_realises_the_wide_masses():
+    # Both layouts quantise to the same 2**64 units per row; they are built by different
+    # constructions (Vose's general pairing vs Walker's own-cell layout) and must agree exactly.
+    rng = np.random.default_rng(8)
+    dense = rng.random((300, 300))
+    dense /= dense.sum(axis=1, keepdims=True)
+    d = cell_table(dense)
+    assert (d.kind, d.bits, d.coarse_bits) == ("direct", 9, 7)
+    assert d.masses() == cell_table(dense, kind="wide", bits=9).masses()
+    assert d.nbytes == 300 * 512 * 10
+    # few successors per row: a split table with few mixed cells
+    assert cell_table(_random_chain(rng, 200, 0.01)).kind == "split"
+    # many states with few successors: a direct table (100 MiB here) would dwarf the split one
+    sparse = np.zeros((2500, 2500))
+    for i in range(2500):
+        sparse[i, rng.choice(2500, 5, replace=False)] = 0.2
+    t = cell_table(sparse)
+    assert t.kind == "split" and t.nbytes < 1 << 20
+
+
+def test_direct_table_needs_a_cell_per_state():
+    ring = np.roll(np.eye(5), 1, axis=1)  # one successor each: 4 cells hold a row, not 5 states
+    with pytest.raises(ValueError, match="one per state"):
+        cell_table(ring, kind="direct", bits=2)
+    with pytest.raises(ValueError, match="between 1 and 12"):
+        cell_table(np.full((5, 5), 0.2), kind="direct", bits=13)
+
+
+class _Words:
+    """A stand-in bit generator handing out given 64-bit words."""
+
+    def __init__(self, words):
+        self.words = np.asarray(words, dtype=np.uint64)
+
+    def random_raw(self, size):
+        out, self.words = self.words[:size], self.words[size:]
+        return np.concatenate([out, np.zeros(size - out.size, dtype=np.uint64)])
+
+
+@pytest.mark.parametrize("bits", [3, 12])
+def test_direct_kernel_settles_fractions_at_every_threshold_exactly(bits):
+    # A replicate's 16 random bits are its cell c (top `bits`) and the top g = 16 - bits bits of
+    # its fraction; on a tie with the cell's coarse threshold, a coin's top 48 bits complete the
+    # fraction.  Fractions just below, at and above each cell's exact threshold (ties among them)
+    # must go where the layout says: the cell's own state below the threshold, the alias from it
+    # on.  Both kernels, coins read in replicate order.
+    P = np.array([[0.5, 0.3, 0.2 - 1e-12, 1e-12, 0], [0.2, 0.2, 0.2, 0.2, 0.2], [0, 0, 0, 0, 1],
+                  [1 / 3, 0, 1 / 3, 1 / 3, 0], [0.125, 0.125, 0.25, 0.5, 0]])
+    t = cell_table(P, kind="direct", bits=bits)
+    g = t.coarse_bits
+    U = 1 << (64 - bits)
+    for i in range(5):
+        v16, coins, expect = [], [], []
+        for c in range(t.L):
+            q = int(t.exact[i * t.L + c])
+            rec = int(t.cells[i * t.L + c])
+            for frac in sorted({0, q - 1, q, q + 1, U - 1, (q >> 48) << 48, ((q >> 48) << 48) - 1}):
+                if 0 <= frac < U:
+                    v16.append((c << g) | (frac >> 48))
+                    if frac >> 48 == rec & ((1 << g) - 1):  # a tie: the coin carries the rest
+                        coins.append((frac & ((1 << 48) - 1)) << 16)
+                    expect.append(c if frac < q else rec >> g)
+        assert all(P[i, j] > 0 for j in expect)
+        assert coins  # ties are exercised
+        words = np.array(v16 + [0] * (-len(v16) % 4), dtype=np.uint16).view(np.uint64)
+        for kernel in ("vector", "scalar"):
+            sim = ReplicateSimulation(P, replicates=len(v16), steps=1, start=i, seed=0, table=t,
+                                      _kernel=kernel, paths=0)
+            sim._cells_bg = _Words(words)
+            sim._coins._bg = _Words(coins)
+            sim.advance(1)
+            assert sim.states().tolist() == expect, (i, kernel)
 
 
 def test_mixed_cells_are_at_most_successors_minus_one():
@@ -104,15 +178,16 @@ def test_mixed_cells_are_at_most_successors_minus_one():
 # the sampler is right: one-step transition counts
 
 
-@pytest.mark.parametrize("kind,kernel", [("split", "vector"), ("wide", "vector"), ("split", "scalar"),
-                                         ("wide", "scalar")])
-def test_one_step_transitions_follow_P(kind, kernel):
+@pytest.mark.parametrize("kind,bits", [("split", None), ("wide", None), ("direct", None), ("direct", 12)])
+@pytest.mark.parametrize("kernel", ["vector", "scalar"])
+def test_one_step_transitions_follow_P(kind, bits, kernel):
+    # (a direct table of 2**12 cells keeps 4 coarse threshold bits: one replicate-step in 16 ties)
     # Pearson chi-square per row at alpha = 1e-6 / rows (Bonferroni).
     rng = np.random.default_rng(4)
     n = 6
     P = _random_chain(rng, n, 0.6)
     P[0] = [1e-3, 0.999 - 1e-9, 1e-9, 0, 0, 0]
-    table = cell_table(P, kind=kind)
+    table = cell_table(P, kind=kind, bits=bits)
     R = 60000 if kernel == "vector" else 4
     pairs = np.zeros((n, n), dtype=np.int64)
     sim = ReplicateSimulation(P, replicates=R, steps=2000 if kernel == "scalar" else 3, start="uniform",
@@ -134,6 +209,19 @@ def test_ensemble_is_a_sample_of_the_exact_law():
     sim = ReplicateSimulation(P, replicates=200000, steps=7, start=3, seed=8, paths=0)
     res = sim.run()
     assert D.chisquare_gof(res.ensemble, distribution_at(P, np.eye(40)[3], 7)).pvalue > 1e-6
+
+
+def test_dense_chain_ensemble_is_a_sample_of_the_exact_law():
+    # The same check on a dense 300-state chain (a direct table, chosen by default), from a start
+    # law and from one state; the exact law by plain numpy matrix products (alpha 1e-6 each).
+    rng = np.random.default_rng(15)
+    P = rng.random((300, 300)) ** 3
+    P /= P.sum(axis=1, keepdims=True)
+    assert cell_table(P).kind == "direct"
+    for start, pi0 in [(7, np.eye(300)[7]), (None, np.full(300, 1 / 300))]:
+        res = ReplicateSimulation(P, replicates=300000, steps=2, start=start, seed=9, paths=0).run()
+        exact = pi0 @ P @ P
+        assert D.chisquare_gof(res.ensemble, exact).pvalue > 1e-6
 
 
 def test_start_law_is_sampled():
@@ -166,7 +254,7 @@ def _fingerprint(sim):
             sim.states().tolist())
 
 
-@pytest.mark.parametrize("kind", ["split", "wide"])
+@pytest.mark.parametrize("kind", ["split", "wide", "direct"])
 @pytest.mark.parametrize("burn_in", [0, 13])
 def test_same_seed_same_result_whatever_the_chunks_and_snapshots(kind, burn_in):
     P = _random_chain(np.random.default_rng(6), 12, 0.5)
@@ -188,10 +276,11 @@ def test_same_seed_same_result_whatever_the_chunks_and_snapshots(kind, burn_in):
     assert all(p == prints[0] for p in prints)
 
 
-@pytest.mark.parametrize("kind", ["split", "wide"])
-def test_scalar_and_vector_kernels_agree_bit_for_bit(kind):
+@pytest.mark.parametrize("kind, bits", [("split", None), ("wide", None), ("direct", None),
+                                        ("direct", 12)])  # 12 bits: 4 coarse bits, one word in 16 ties
+def test_scalar_and_vector_kernels_agree_bit_for_bit(kind, bits):
     P = _random_chain(np.random.default_rng(7), 9, 0.7)
-    table = cell_table(P, kind=kind)
+    table = cell_table(P, kind=kind, bits=bits)
     out = []
     for kernel in ("scalar", "vector"):
         sim = ReplicateSimulation(P, replicates=3, steps=500, seed=11, table=table, _kernel=kernel,
