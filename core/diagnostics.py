@@ -478,9 +478,10 @@ def replicate_mcse(counts, length: int, *, replicates: int | None = None, mean=N
     if K < 2:
         raise ValueError("replicate MCSE needs at least 2 replicates")
     R = K if replicates is None else int(replicates)
-    means = c / h
-    est = means.mean(axis=0) if mean is None else np.asarray(mean, dtype=np.float64)
-    se = np.sqrt(np.var(means, axis=0, ddof=1) / R)
+    est = c.mean(axis=0) / h if mean is None else np.asarray(mean, dtype=np.float64)
+    # the variance of the integer counts is exactly 0 when they are all equal (a deterministic
+    # chain), where the variance of the rounded means c / h would be a few ulps
+    se = np.sqrt(np.var(c, axis=0, ddof=1) / R) / h
     return MCSE(mean=est, se=se, ess=_ess_from_se(est, se), method="independent replicates", groups=K)
 
 
@@ -504,9 +505,8 @@ def batch_means_mcse(counts, length: int) -> MCSE:
     K = c.shape[0]
     if K < 2:
         raise ValueError("batch means need at least 2 batches")
-    means = c / h
-    est = means.mean(axis=0)
-    se = np.sqrt(np.var(means, axis=0, ddof=1) / K)
+    est = c.mean(axis=0) / h
+    se = np.sqrt(np.var(c, axis=0, ddof=1) / K) / h  # exact 0 for equal counts (see replicate_mcse)
     return MCSE(mean=est, se=se, ess=_ess_from_se(est, se), method=f"batch means ({K} batches of {h} draws)",
                 groups=K)
 

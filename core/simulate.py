@@ -1967,8 +1967,12 @@ def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, ta
     for j, note in sorted(notes.items()):
         findings.append(f"R-hat of state {ids[j]!r}: {note}.")
     if window is not None and tv_win is not None:
-        findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
-                        "(the start-up bias of this burn-in and run length).")
+        if tv_win < 1e-12:  # round-off of an exact zero, or as good
+            findings.append("exactly, the kept draws average to the long-run law (TV below 1e-12): this burn-in "
+                            "and run length leave no start-up bias.")
+        else:
+            findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
+                            "(the start-up bias of this burn-in and run length).")
     findings.append(f"d_start(B+T) = TV(pi0 P^{total}, long-run law) = {curve[-1]:.3g}.")
     # the verdict
     if gof.impossible or (np.isfinite(gof.pvalue) and gof.pvalue < ENGINE_ALPHA):

@@ -209,9 +209,13 @@ def render(report, chain, path: str, start_text: str) -> str:
         lines.append(f"  ({n - TABLE_ROWS} more states; --json lists all)")
     lines.append("")
     g = report.gof
+    if g.dof == 0 and not g.impossible:
+        test = "no chi-square test (the exact law puts all its mass on one state)"
+    else:
+        test = (f"chi-square {g.statistic:.4g} on {g.dof} df, p = {g.pvalue:.3g}"
+                + (f" ({g.pooled} sparse cells pooled)" if g.pooled else ""))
     lines.append(f"  ensemble vs pi0 P^(B+T)  TV {report.tv_ensemble:.3g} (sampling noise alone gives about "
-                 f"{report.tv_ensemble_noise:.2g}); chi-square {g.statistic:.4g} on {g.dof} df, p = "
-                 f"{g.pvalue:.3g}" + (f" ({g.pooled} sparse cells pooled)" if g.pooled else ""))
+                 f"{report.tv_ensemble_noise:.2g}); {test}")
     if report.tv_time_average is not None:
         lines.append(f"  time average vs long run TV {report.tv_time_average:.3g}"
                      + (f"; |z| > {report.z_crit:.2f} flags a state (family-wise 1e-3)"

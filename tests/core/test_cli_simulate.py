@@ -86,6 +86,22 @@ def test_readable_output_has_table_distances_and_verdict(capsys):
     assert "not the world" in out  # the caution
 
 
+def test_deterministic_cycle_reads_plainly(capsys, tmp_path):
+    # A deterministic 3-cycle: every replicate spends exactly a third of 300 steps in each state,
+    # so the MCSE is 0 and the ESS undefined; the ensemble sits on one state, where a chi-square
+    # test has no degrees of freedom.
+    f = tmp_path / "ring.json"
+    f.write_text(json.dumps({"format": "longrun-chain", "version": 1, "name": "ring",
+                             "states": [{"id": s} for s in "abc"],
+                             "transitions": [{"from": a, "to": b, "p": 1} for a, b in ("ab", "bc", "ca")]}))
+    assert main(["simulate", str(f), "-R", "1000", "-T", "300", "--seed", "1"]) == 0
+    out = capsys.readouterr().out
+    rows = [ln.split() for ln in out.splitlines() if ln.strip()[:2] in ("a ", "b ", "c ")]
+    assert [r[5] for r in rows] == ["0", "0", "0"] and [r[-1] for r in rows] == ["n/a"] * 3
+    assert "no chi-square test (the exact law puts all its mass on one state)" in out
+    assert "e-17" not in out and "e+3" not in out
+
+
 def test_uniform_start(capsys):
     doc = _json(capsys, "-R", "40", "-T", "50", "--seed", "2", "--start", "uniform")
     assert doc["start"] == {k: 0.25 for k in ("new", "worn", "degraded", "failed")}

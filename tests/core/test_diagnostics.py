@@ -263,6 +263,16 @@ def test_replicate_mcse_scales_to_all_replicates():
     assert b.se == pytest.approx(a.se / 10)
 
 
+def test_equal_counts_have_zero_mcse_and_no_ess():
+    # Replicates (or batches) with the same counts, e.g. of a deterministic cycle, have sample
+    # variance exactly 0 (common practice: a constant sample has no spread); the ESS p(1-p)/se^2
+    # is then undefined, not a huge number from round-off (100/300 is not exact in binary).
+    counts = np.tile([100, 100, 100], (50, 1))
+    for mc in (D.replicate_mcse(counts, 300, replicates=1000), D.batch_means_mcse(counts, 300)):
+        assert mc.se.tolist() == [0.0, 0.0, 0.0]
+        assert np.isnan(mc.ess).all()
+
+
 def test_batch_means_of_iid_batches():
     rng = np.random.default_rng(12)
     K, h, p = 300, 100, 0.2
