@@ -19,7 +19,8 @@ from typing import Any, Iterable, Iterator, Mapping
 from PySide6.QtCore import QObject, Signal
 from PySide6.QtGui import QUndoCommand, QUndoStack
 
-from core.errors import ChainFileError
+from core.errors import ChainFileError, OptionError
+from core.io import state_limit
 from core.model import REST, Chain, State, Transition, parse_probability
 
 from .layout import fill_missing_positions, layout_positions
@@ -131,6 +132,19 @@ def _plural(n: int, word: str) -> str:
     return f"{n} {word}{'' if n == 1 else 's'}"
 
 
+def blank_chain(name: str = "") -> tuple[Chain, str | None]:
+    """An empty chain under the state limit in force, and what is wrong with that limit, if anything.
+
+    The limit is ``LONGRUN_MAX_STATES`` when set (as for chains read from files); a
+    malformed value gives the default limit and the message naming the variable, for
+    the caller to show.
+    """
+    try:
+        return Chain(name=name, state_limit=state_limit()), None
+    except OptionError as exc:
+        return Chain(name=name), f"{exc}; the new chain uses the default limit of {Chain.state_limit:,} states"
+
+
 class Document(QObject):
     """One open chain: the single source of truth every view observes.
 
@@ -154,7 +168,7 @@ class Document(QObject):
     def __init__(self, chain: Chain | None = None, path: str | os.PathLike | None = None,
                  parent: QObject | None = None):
         super().__init__(parent)
-        self._chain = chain if chain is not None else Chain(name="")
+        self._chain = chain if chain is not None else blank_chain()[0]
         self._path: Path | None = Path(path).resolve() if path else None
         self.undo_stack = QUndoStack(self)
         self.undo_stack.cleanChanged.connect(self._on_clean_changed)

@@ -33,7 +33,7 @@ from . import dialogs
 from . import palette as pal
 from .analysis_service import AnalysisService
 from .canvas import ChainCanvas
-from .document import Document
+from .document import Document, blank_chain
 from .icons import icon
 from .layout import LAYOUTS
 from .panels import PANEL_MODULES, PanelSpec, Workspace, panel_specs
@@ -513,8 +513,11 @@ class MainWindow(QMainWindow):
     def file_new(self) -> None:
         if not self.maybe_save():
             return
-        self.document.reset(Chain(name=""))
+        chain, problem = blank_chain()
+        self.document.reset(chain)
         self.canvas.reset_view()
+        if problem:
+            dialogs.inform(self, "State limit", problem[0].upper() + problem[1:] + ".")
         self.show_message("New chain: double-click the canvas to add a state")
 
     def file_open(self) -> None:
@@ -695,7 +698,7 @@ class MainWindow(QMainWindow):
                 e.release()
             return False
         entry, rest = entries[0], entries[1:]
-        base = Chain(name=entry.chain.name)
+        base = blank_chain(entry.chain.name)[0]
         path = entry.original
         if path and os.path.exists(path):
             try:

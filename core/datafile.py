@@ -55,6 +55,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 
 from .errors import ChainFileError, LimitError, OptionError
+from .limits import env_whole
 
 __all__ = [
     "MAX_ROWS",
@@ -72,15 +73,8 @@ __all__ = [
 ]
 
 
-def _env_int(name: str, default: int) -> int:
-    try:
-        return int(os.environ.get(name, default))
-    except ValueError:
-        return default
-
-
-#: Largest number of data rows read (``LONGRUN_MAX_ROWS`` overrides).
-MAX_ROWS = _env_int("LONGRUN_MAX_ROWS", 1_000_000)
+#: Largest number of data rows read, unless ``LONGRUN_MAX_ROWS`` sets another.
+MAX_ROWS = 1_000_000
 #: Largest number of distinct states a data file may produce.
 MAX_STATES = 1000
 
@@ -181,6 +175,7 @@ def parse_table(text: str, *, source: str | None = None, header: bool = True, sh
     lines: list[int] = []
     columns: tuple[str, ...] | None = None
     header_line = None
+    max_rows = env_whole("LONGRUN_MAX_ROWS", MAX_ROWS, unit="data rows")
     prev = 0
     try:
         for raw in reader:
@@ -207,9 +202,9 @@ def parse_table(text: str, *, source: str | None = None, header: bool = True, sh
                 columns = tuple(names)
                 header_line = start
                 continue
-            if len(rows) >= MAX_ROWS:
+            if len(rows) >= max_rows:
                 raise LimitError(
-                    f"{source or 'the data'}: more than {MAX_ROWS:,} data rows (raise the limit with the "
+                    f"{source or 'the data'}: more than {max_rows:,} data rows (raise the limit with the "
                     "LONGRUN_MAX_ROWS environment variable)"
                 )
             rows.append(tuple(cells))

@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import ChainFileError, ValidationError
+from .limits import env_whole
 from .model import ROW_SUM_TOLERANCE, Chain, State, Step, Transition
 
 __all__ = [
@@ -53,15 +54,19 @@ VERSION = 1
 VALIDATED_FORMAT = "longrun-validated-matrix"
 
 
-def _env_int(name: str, default: int) -> int:
-    try:
-        return int(os.environ.get(name, default))
-    except ValueError:
-        return default
+#: Largest chain or CSV file read, in bytes, unless ``LONGRUN_MAX_FILE_MB`` sets another (in MiB).
+MAX_FILE_BYTES = 64 * 1024 * 1024
 
 
-#: Largest chain or CSV file read, in bytes (``LONGRUN_MAX_FILE_MB`` overrides).
-MAX_FILE_BYTES = _env_int("LONGRUN_MAX_FILE_MB", 64) * 1024 * 1024
+def max_file_bytes() -> int:
+    """The file size limit now: ``LONGRUN_MAX_FILE_MB`` MiB, or :data:`MAX_FILE_BYTES`."""
+    mb = env_whole("LONGRUN_MAX_FILE_MB", 0, unit="MiB")
+    return mb * 1024 * 1024 if mb else MAX_FILE_BYTES
+
+
+def state_limit() -> int:
+    """The dense-analysis state limit now: ``LONGRUN_MAX_STATES``, or the default of :class:`Chain`."""
+    return env_whole("LONGRUN_MAX_STATES", Chain.state_limit, unit="states")
 #: Deepest JSON nesting accepted (objects and arrays).
 MAX_NESTING = 64
 
@@ -99,19 +104,20 @@ def _read_bytes(path: str | os.PathLike) -> bytes:
         raise ChainFileError(f"cannot read the file ({exc.strerror})", path=str(path)) from None
     if p.is_dir():
         raise ChainFileError("this is a folder, not a file", path=str(path))
-    if size > MAX_FILE_BYTES:
+    limit = max_file_bytes()
+    if size > limit:
         raise ChainFileError(
             f"the file is {size / 2**20:.1f} MiB, larger than the limit of "
-            f"{MAX_FILE_BYTES / 2**20:.0f} MiB (raise it with the LONGRUN_MAX_FILE_MB "
+            f"{limit / 2**20:.0f} MiB (raise it with the LONGRUN_MAX_FILE_MB "
             "environment variable)",
             path=str(path),
         )
     try:
         with open(p, "rb") as fh:
-            data = fh.read(MAX_FILE_BYTES + 1)
+            data = fh.read(limit + 1)
     except OSError as exc:
         raise ChainFileError(f"cannot read the file ({exc.strerror})", path=str(path)) from None
-    if len(data) > MAX_FILE_BYTES:
+    if len(data) > limit:
         raise ChainFileError("the file grew past the size limit while being read", path=str(path))
     return data
 
@@ -224,7 +230,7 @@ def loads_chain(text: str | bytes, *, source: str | None = None) -> Chain:
         version, or does not fit the schema.  The message names the place.
     """
     if isinstance(text, bytes):
-        if len(text) > MAX_FILE_BYTES:
+        if len(text) > max_file_bytes():
             raise ChainFileError("the content is larger than the size limit", path=source)
         text = _decode(text, source)
     if text.startswith("\ufeff"):
@@ -307,7 +313,7 @@ def chain_from_dict(doc: Any, *, source: str | None = None) -> Chain:
         description=doc.get("description", ""),
         step=step,
         extra=extra,
-        state_limit=_env_int("LONGRUN_MAX_STATES", Chain.state_limit),
+        state_limit=state_limit(),
     )
 
 
@@ -534,7 +540,7 @@ def reads_matrix_csv(text: str, *, source: str | None = None, name: str = "") ->
         )
     states = tuple(State(c) for c in row_ids)
     return Chain(states=states, transitions=tuple(trans), name=name,
-                 state_limit=_env_int("LONGRUN_MAX_STATES", Chain.state_limit))
+                 state_limit=state_limit())
 
 
 def read_matrix_csv(path: str | os.PathLike) -> Chain:

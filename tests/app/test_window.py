@@ -166,6 +166,19 @@ def test_new_and_title(window, dialogs, pump):
     assert window.windowTitle().startswith("Untitled[*]")
 
 
+def test_new_chain_follows_the_state_limit_variable(window, dialogs, monkeypatch):
+    # File > New starts under the same LONGRUN_MAX_STATES limit as chains read from files
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "3")
+    window.file_new()
+    assert window.document.chain.state_limit == 3 and not dialogs.infos
+    # a malformed value is said, by name, and the default limit is used
+    monkeypatch.setenv("LONGRUN_MAX_STATES", "10k")
+    window.file_new()
+    assert window.document.chain.state_limit == 5000
+    [(title, text)] = dialogs.infos
+    assert "LONGRUN_MAX_STATES='10k' is not a whole number" in text and "default limit of 5,000 states" in text
+
+
 def test_export_validated_matrix_json_and_csv(window, dialogs, pump, tmp_path):
     window.open_path(pump, ask=False)
     out = tmp_path / "handover.json"

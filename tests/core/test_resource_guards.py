@@ -8,10 +8,10 @@ traceback; never a freeze or an out-of-memory kill.  Raising the limit must then
 the same request through.  Common practice for tools that take untrusted input and
 user-sized workloads (fail early, say why, say how).
 
-Environment variables read when a module is imported (``LONGRUN_MAX_FILE_MB``,
-``LONGRUN_MAX_ROWS``) are checked in a fresh ``python -m core`` process, exactly as a
-user sets them; the report command runs in a subprocess too, so Qt never enters this
-Qt-free test process.
+Environment variables (``LONGRUN_MAX_FILE_MB``, ``LONGRUN_MAX_ROWS``, ...) are read when a
+limit is used; they are checked in a fresh process, exactly as a user sets them in a
+shell, and a value that is not a whole number is refused with its name, never ignored.
+The report command runs in a subprocess too, so Qt never enters this Qt-free test process.
 """
 from __future__ import annotations
 
@@ -303,6 +303,24 @@ def test_file_size_limit_for_chain_files_matrix_csv_and_observations(tmp_path):
     for code, _, err in cli(*commands, env={"LONGRUN_MAX_FILE_MB": "2"}, cwd=tmp_path):
         assert code == 0, err
     assert load_chain(tmp_path / "fitted.json").n == 2
+
+
+@pytest.mark.timeout(120)
+@pytest.mark.parametrize("variable, argv", [
+    ("LONGRUN_MAX_FILE_MB", ["validate", PUMP]),
+    ("LONGRUN_MAX_STATES", ["analyze", PUMP]),
+    ("LONGRUN_MAX_ROWS", ["fit", ROOT / "sample_models" / "data" / "daily_moves.csv", "-o", "fitted.json",
+                          "--draws", "0", "--column", "daily_return", "--id-column", "fund",
+                          "--time-column", "date", "--cuts=-1%,1%"]),
+])
+def test_malformed_limit_variables_are_refused_by_name(tmp_path, variable, argv):
+    # A limit the user set wrongly must not silently fall back to the default
+    for value in ("lots", "0", "-3", "1.5"):
+        [(code, _, err)] = cli(argv, env={variable: value}, cwd=tmp_path)
+        assert_clean_refusal(code, err, f"{variable}={value!r} is not a whole number", "unset it for the default")
+    assert not (tmp_path / "fitted.json").exists()
+    [(code, _, err)] = cli(argv, env={variable: "2e3"}, cwd=tmp_path)  # a whole number in another spelling
+    assert code == 0, err
 
 
 def test_default_file_size_limit_is_checked_before_reading(tmp_path, capsys):
