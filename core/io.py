@@ -16,7 +16,9 @@ import io
 import json
 import math
 import os
+import re
 import tempfile
+import time
 from functools import lru_cache
 from importlib import resources
 from pathlib import Path
@@ -400,6 +402,32 @@ def atomic_write_text(path: str | os.PathLike, text: str) -> None:
     atomic_write_bytes(path, text.encode("utf-8"))
 
 
+#: A temporary file of an interrupted save older than this (seconds) is removed by the next save.
+STALE_TEMPORARY_AGE = 600.0
+
+
+def _remove_stale_temporaries(folder: Path, name: str) -> None:
+    """Remove what killed saves of ``name`` left behind: ``.NAME.XXXXXXXX.tmp`` older than 10 minutes.
+
+    Only names of exactly the pattern :func:`atomic_write_bytes` creates are
+    touched, and only old ones (a save in progress elsewhere is seconds old).
+    """
+    pattern = re.compile(r"\." + re.escape(name) + r"\.[A-Za-z0-9_]{8}\.tmp")
+    now = time.time()
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return
+    for e in entries:
+        if not pattern.fullmatch(e.name):
+            continue
+        try:
+            if e.is_file(follow_symlinks=False) and now - e.stat(follow_symlinks=False).st_mtime > STALE_TEMPORARY_AGE:
+                os.unlink(e.path)
+        except OSError:
+            pass
+
+
 def atomic_write_bytes(path: str | os.PathLike, data: bytes, *, what: str = "save") -> None:
     """Write ``data`` to ``path`` atomically (temp file, fsync, ``os.replace``).
 
@@ -426,6 +454,7 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes, *, what: str = "sav
             os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, p)
         tmp = None
+        _remove_stale_temporaries(folder, p.name)
         try:
             dfd = os.open(folder, os.O_RDONLY)
             try:

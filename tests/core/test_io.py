@@ -2,6 +2,7 @@
 import hashlib
 import json
 import os
+import time
 
 import jsonschema
 import pytest
@@ -224,3 +225,23 @@ def test_validated_export_is_refused_as_chain_file():
     c = cio.loads_chain(json.dumps(GOOD))
     with pytest.raises(ChainFileError, match="validated-matrix export"):
         cio.loads_chain(json.dumps(cio.validated_matrix(c)))
+
+
+def test_a_save_removes_old_temporaries_of_killed_saves_of_that_file_only(tmp_path):
+    # A save killed between creating its temporary file and the rename leaves `.NAME.XXXXXXXX.tmp`
+    # (tests/app/test_fault_tolerance.py kills saves to show it); the next save of the same file
+    # removes such leftovers once they are older than 10 minutes, and nothing else.
+    target = tmp_path / "fleet.json"
+    old = time.time() - 3600
+    stale = [tmp_path / ".fleet.json.a1b2c3d4.tmp", tmp_path / ".fleet.json.zz_9yy_8.tmp"]
+    fresh = tmp_path / ".fleet.json.q1w2e3r4.tmp"  # a save in progress elsewhere: seconds old
+    others = [tmp_path / ".other.json.a1b2c3d4.tmp", tmp_path / "fleet.json.a1b2c3d4.tmp",
+              tmp_path / ".fleet.json.toolongname.tmp", tmp_path / "notes.tmp"]
+    for f in stale + others + [fresh]:
+        f.write_bytes(b"partial")
+    for f in stale + others:
+        os.utime(f, (old, old))
+    cio.atomic_write_bytes(target, b"{}")
+    assert target.read_bytes() == b"{}"
+    assert not any(f.exists() for f in stale)
+    assert fresh.exists() and all(f.exists() for f in others)
