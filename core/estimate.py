@@ -41,7 +41,7 @@ intervals, parametric bootstrap).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from fractions import Fraction
 from typing import Any, Generator, Iterable, Sequence
 

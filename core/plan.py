@@ -995,7 +995,7 @@ def explain(check: PlanCheck) -> str:
     how = (
         "where the replicates are at the final step"
         if plan.estimator == "final"
-        else (f"the time average along each replicate" + (f" (every {plan.stride} steps)" if plan.stride > 1 else ""))
+        else ("the time average along each replicate" + (f" (every {plan.stride} steps)" if plan.stride > 1 else ""))
     )
     j = int(np.argmax(np.abs(check.bias)))
     est_j, lr_j = check.expected_estimate[j], check.long_run[j]

@@ -1230,6 +1230,6 @@ class _Ctx:
             markers=tuple(markers),
             y_floor=min(floor, plan.tolerance / 10),
             caption=("Exact distance, for each run length at the planned burn-in, between the law the "
-                     f"plan's estimate converges to and the long-run law; below the tolerance line "
+                     "plan's estimate converges to and the long-run law; below the tolerance line "
                      "the plan is sound."),
         )

@@ -529,6 +529,31 @@ def _quantise(p: np.ndarray, bits: int, ub: int) -> tuple[np.ndarray, np.ndarray
     return a, r
 
 
+def _donate(a, r, rows, pos, small, ub: int, ss, ns, nl) -> None:
+    """Donor items ``(rows, pos)`` top up a small item's cell each: mass ``-= U - small``, exactly.
+
+    Masses are ``a * U + r`` (``U = 2**ub``, ``ub <= 64``); a donor left below
+    one cell leaves its row's large stack (``nl``) for the small one (``ss``,
+    ``ns``).  Shared by both alias constructions.
+    """
+    rl = r[rows, pos]
+    tot = rl + small  # wraps modulo 2**64 when U == 2**64
+    if ub == 64:
+        carry = tot < rl
+    else:
+        U = np.uint64(1 << ub)
+        carry = tot >= U
+        tot = np.where(carry, tot - U, tot)
+    anew = a[rows, pos] - 1 + carry
+    a[rows, pos] = anew
+    r[rows, pos] = tot
+    became = anew == 0
+    br = rows[became]
+    nl[br] -= 1
+    ss[br, ns[br]] = pos[became]
+    ns[br] += 1
+
+
 def _walker_block(Pb: np.ndarray, bits: int) -> tuple[np.ndarray, np.ndarray]:
     """Walker's own layout for a block of rows, exactly, vectorised over the rows.
 
@@ -569,17 +594,7 @@ def _walker_block(Pb: np.ndarray, bits: int) -> tuple[np.ndarray, np.ndarray]:
         rs = r[act, sp]
         Q[act, sp] = rs
         alias[act, sp] = lp
-        # the donor gives (1 cell - small): (a, r) + rs - U, exact (r + rs < 2U <= 2**64)
-        tot = r[act, lp] + rs
-        carry = tot >= Uu
-        r[act, lp] = np.where(carry, tot - Uu, tot)
-        anew = a[act, lp] - 1 + carry
-        a[act, lp] = anew
-        became = anew == 0
-        br = act[became]
-        nl[br] -= 1
-        ss[br, ns[br]] = lp[became]
-        ns[br] += 1
+        _donate(a, r, act, lp, rs, ub, ss, ns, nl)
     if ns.any():  # pragma: no cover - the masses are exact, so no small item is left unpaired
         raise AssertionError("alias construction left a cell unfilled")
     # what is left of the large stacks: exactly one whole cell each, their own
@@ -610,7 +625,6 @@ def _alias_block(Pb: np.ndarray, bits: int, ub: int):
     """
     nb, n = Pb.shape
     L = 1 << bits
-    U = 1 << ub
     sup = Pb > 0
     k = sup.sum(axis=1)
     K = int(k.max())
@@ -628,7 +642,6 @@ def _alias_block(Pb: np.ndarray, bits: int, ub: int):
     nl = is_large.sum(axis=1).astype(np.int64)
     m_rows, m_q, m_hit, m_miss = [], [], [], []
     p_rows, p_lab, p_cnt = [], [], []
-    Uu = np.uint64(U - 1) if ub < 64 else None
     while True:
         act = np.flatnonzero(nl > 0)
         if act.size == 0:
@@ -644,22 +657,7 @@ def _alias_block(Pb: np.ndarray, bits: int, ub: int):
             m_q.append(rs)
             m_hit.append(items[pr, spos])
             m_miss.append(items[pr, lpos])
-            # large -= (1 cell - small): (a, r) + rs - U
-            rl = r[pr, lpos]
-            tot = rl + rs  # wraps modulo 2**64 when U == 2**64
-            if Uu is None:
-                carry = tot < rl
-            else:
-                carry = tot > Uu
-                tot = np.where(carry, tot - np.uint64(U), tot)
-            anew = a[pr, lpos] - 1 + carry
-            a[pr, lpos] = anew
-            r[pr, lpos] = tot
-            became = anew == 0
-            br = pr[became]
-            nl[br] -= 1
-            ss[br, ns[br]] = lpos[became]
-            ns[br] += 1
+            _donate(a, r, pr, lpos, rs, ub, ss, ns, nl)
         qr = act[~has]
         if qr.size:
             nl[qr] -= 1
