@@ -21,12 +21,11 @@ from PySide6.QtWidgets import (
     QTreeWidget,
     QTreeWidgetItem,
     QVBoxLayout,
-    QWidget,
 )
 
 from . import palette as pal
 from .panels import PanelSpec, Workspace
-from .plan_form import BackgroundJob, PlanValues, resolve_plan, shared_plan
+from .plan_form import BackgroundJob, JobPanel, PlanValues, resolve_plan, shared_plan
 
 __all__ = ["FindingsPane", "FindingsOutcome", "findings_job", "severity_icon", "PANELS"]
 
@@ -104,7 +103,7 @@ def findings_job(chain, values: PlanValues) -> FindingsOutcome:
     return FindingsOutcome(chain, values, found, text)
 
 
-class FindingsPane(QWidget):
+class FindingsPane(JobPanel):
     """The list of findings and the selected one's explanation (a dock panel).
 
     Signals
@@ -302,13 +301,6 @@ class FindingsPane(QWidget):
         if callable(reveal) and (states or trans):
             reveal()
 
-    @property
-    def busy(self) -> bool:
-        """The findings are being recomputed."""
-        return self.job.busy
-
-    def shutdown(self) -> None:
-        self.job.shutdown()
 
 
 PANELS = [

@@ -318,6 +318,20 @@ class BackgroundJob(QObject):
         self._thread = None
 
 
+class JobPanel(QWidget):
+    """A panel whose work runs in its :class:`BackgroundJob` ``self.job`` (set by the subclass)."""
+
+    job: BackgroundJob
+
+    @property
+    def busy(self) -> bool:
+        """The panel's job is pending or running."""
+        return self.job.busy
+
+    def shutdown(self) -> None:
+        self.job.shutdown()
+
+
 # ---------------------------------------------------------------------------
 # the plan values and the shared model
 # ---------------------------------------------------------------------------
@@ -799,7 +813,7 @@ def verdict_badge(label: QLabel, kind: str, text: str) -> None:
                         " padding: 3px 8px; font-weight: 700; }")
 
 
-class PlanForm(QWidget):
+class PlanForm(JobPanel):
     """The plan check form (a dock panel): the plan's fields and its exact verdict.
 
     Parameters
@@ -1126,13 +1140,6 @@ class PlanForm(QWidget):
         self.run_plan.request_run("recommended")
         return True
 
-    @property
-    def busy(self) -> bool:
-        """A check is pending or running."""
-        return self.job.busy
-
-    def shutdown(self) -> None:
-        self.job.shutdown()
 
 
 PANELS = [

@@ -56,6 +56,63 @@ def isolated(tmp_path, monkeypatch):
 
 
 @pytest.fixture
+def make_panels(qtbot):
+    """``make(chain, "simulation", "plan", ...)`` builds panels over one document and analysis service.
+
+    Kinds: ``"simulation"`` (the default), ``"plan"``, ``"findings"``, ``"longrun"``; they are laid
+    out in one host (``horizontal``, ``size``) and returned as ``(workspace, {kind: panel})``, after
+    the first structure report when ``ready`` (a chain with problems never has one).  At the end
+    every panel and the service are shut down, and no background thread may be left.
+    """
+    from PySide6.QtWidgets import QHBoxLayout, QVBoxLayout, QWidget
+
+    from app.main import create_application
+
+    create_application()
+    made = []
+
+    def make(chain, *kinds, horizontal=False, size=(700, 900), ready=True):
+        from app.analysis_service import AnalysisService
+        from app.document import Document
+        from app.findings_pane import FindingsPane
+        from app.longrun_panel import LongRunPanel
+        from app.panels import Workspace
+        from app.plan_form import PlanForm
+        from app.settings import Settings
+        from app.simulation_panel import SimulationPanel
+
+        classes = {"simulation": SimulationPanel, "plan": PlanForm, "findings": FindingsPane, "longrun": LongRunPanel}
+        doc = Document()
+        doc.reset(chain)
+        an = AnalysisService(doc, delay_ms=0)
+        ws = Workspace(doc, an, Settings())
+        host = QWidget()
+        lay = (QHBoxLayout if horizontal else QVBoxLayout)(host)
+        panels = {}
+        for kind in kinds or ("simulation",):
+            panels[kind] = classes[kind](ws)
+            lay.addWidget(panels[kind])
+        qtbot.addWidget(host)
+        host.resize(*size)
+        host.show()
+        made.append((ws, panels, host))  # the host owns the panels: keep it alive
+        if ready:
+            qtbot.waitUntil(lambda: an.is_idle and an.structure_report is not None, timeout=10000)
+        return ws, panels
+
+    yield make
+    from app.plan_form import live_job_threads
+    from app.simulation_panel import live_simulation_threads
+
+    for ws, panels, _host in made:
+        for p in panels.values():
+            p.shutdown()
+        ws.analysis.shutdown()
+    assert live_simulation_threads() == [], "a simulation thread was left running"
+    assert live_job_threads() == [], "a background job thread was left running"
+
+
+@pytest.fixture
 def dialogs():
     with pytest.MonkeyPatch.context() as monkeypatch:
         yield _recording_dialogs(monkeypatch)

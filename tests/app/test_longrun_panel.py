@@ -13,39 +13,9 @@ SAMPLES = REPO / "sample_models"
 
 
 @pytest.fixture
-def panel(qtbot):
+def panel(make_panels):
     """``panel(chain)``: a long-run panel over a document of ``chain`` (analysis without debounce)."""
-    from PySide6.QtWidgets import QVBoxLayout, QWidget
-
-    from app.main import create_application
-
-    create_application()
-    made = []
-
-    def make(chain):
-        from app.analysis_service import AnalysisService
-        from app.document import Document
-        from app.longrun_panel import LongRunPanel
-        from app.panels import Workspace
-        from app.settings import Settings
-
-        doc = Document()
-        doc.reset(chain)
-        an = AnalysisService(doc, delay_ms=0)
-        ws = Workspace(doc, an, Settings())
-        host = QWidget()
-        p = LongRunPanel(ws)
-        QVBoxLayout(host).addWidget(p)
-        qtbot.addWidget(host)
-        host.resize(640, 900)
-        host.show()
-        made.append((ws, p, host))
-        return p
-
-    yield make
-    for ws, p, _host in made:
-        p.shutdown()
-        ws.analysis.shutdown()
+    return lambda chain: make_panels(chain, "longrun", size=(640, 900), ready=False)[1]["longrun"]
 
 
 def _ready(qtbot, p, *, intervals=False, timeout=20000):

@@ -13,48 +13,12 @@ SAMPLES = REPO / "sample_models"
 
 
 @pytest.fixture
-def panels(qtbot):
-    """``panels(chain)``: the plan form and the simulation panel over one document."""
-    from PySide6.QtWidgets import QHBoxLayout, QWidget
-
-    from app.main import create_application
-
-    create_application()
-    made = []
-
+def panels(make_panels):
+    """``panels(chain)``: ``(workspace, plan form, simulation panel)`` over one document."""
     def make(chain):
-        from app.analysis_service import AnalysisService
-        from app.document import Document
-        from app.panels import Workspace
-        from app.plan_form import PlanForm
-        from app.settings import Settings
-        from app.simulation_panel import SimulationPanel
-
-        doc = Document()
-        doc.reset(chain)
-        an = AnalysisService(doc, delay_ms=0)
-        ws = Workspace(doc, an, Settings())
-        host = QWidget()
-        lay = QHBoxLayout(host)
-        form = PlanForm(ws)
-        sim = SimulationPanel(ws)
-        lay.addWidget(form)
-        lay.addWidget(sim)
-        qtbot.addWidget(host)
-        host.resize(1200, 900)
-        host.show()
-        made.append((ws, form, sim, host))
-        return ws, form, sim
-
-    yield make
-    from app.plan_form import live_job_threads
-    from app.simulation_panel import live_simulation_threads
-
-    for ws, form, sim, _host in made:
-        form.shutdown()
-        sim.shutdown()
-        ws.analysis.shutdown()
-    assert live_simulation_threads() == [] and live_job_threads() == []
+        ws, p = make_panels(chain, "plan", "simulation", horizontal=True, size=(1200, 900), ready=False)
+        return ws, p["plan"], p["simulation"]
+    return make
 
 
 def _chain(name):

@@ -21,59 +21,6 @@ REPO = Path(__file__).resolve().parents[2]
 SAMPLES = REPO / "sample_models"
 
 
-@pytest.fixture
-def make_panels(qtbot):
-    """``make(chain, "simulation", "plan", ...)`` builds the panels over one document and service."""
-    from PySide6.QtWidgets import QVBoxLayout, QWidget
-
-    from app.main import create_application
-
-    create_application()
-    made = []
-
-    def make(chain, *kinds):
-        from app.analysis_service import AnalysisService
-        from app.document import Document
-        from app.panels import Workspace
-        from app.settings import Settings
-
-        doc = Document()
-        doc.reset(chain)
-        an = AnalysisService(doc, delay_ms=0)
-        ws = Workspace(doc, an, Settings())
-        host = QWidget()
-        lay = QVBoxLayout(host)
-        panels = {}
-        for kind in kinds or ("simulation",):
-            if kind == "simulation":
-                from app.simulation_panel import SimulationPanel as cls
-            elif kind == "plan":
-                from app.plan_form import PlanForm as cls
-            elif kind == "findings":
-                from app.findings_pane import FindingsPane as cls
-            else:
-                from app.longrun_panel import LongRunPanel as cls
-            panels[kind] = cls(ws)
-            lay.addWidget(panels[kind])
-        qtbot.addWidget(host)
-        host.resize(700, 900)
-        host.show()
-        made.append((ws, panels, host))  # the host owns the panels: keep it alive
-        qtbot.waitUntil(lambda: an.is_idle and an.structure_report is not None, timeout=10000)
-        return ws, panels
-
-    yield make
-    from app.plan_form import live_job_threads
-    from app.simulation_panel import live_simulation_threads
-
-    for ws, panels, _host in made:
-        for p in panels.values():
-            p.shutdown()
-        ws.analysis.shutdown()
-    assert live_simulation_threads() == [], "a simulation thread was left running"
-    assert live_job_threads() == [], "a background job thread was left running"
-
-
 def _chain(name):
     from core.io import load_chain
 
