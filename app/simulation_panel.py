@@ -457,6 +457,7 @@ class SimulationPanel(QWidget):
         self.paths = ChartBox("A few sample paths (their last steps)", name="simPaths", grid=False)
         self.paths.set_labels("steps before t", "")
         self.paths.setMinimumHeight(95)
+        self.paths.item.getViewBox().sigResized.connect(self._label_paths)
         pcol = [pal.OKABE_ITO[k] for k in ("blue", "orange", "bluish_green", "reddish_purple")]
         self.path_items = []
         for k in range(PATHS):
@@ -819,10 +820,19 @@ class SimulationPanel(QWidget):
 
     def _layout_paths(self, ids) -> None:
         n = len(ids)
-        ax = self.paths.item.getAxis("left")
-        ax.setTicks([state_ticks(ids, max_labels=6, width=8), []])
+        self._path_ids = tuple(ids)
+        self._label_paths()
         self.paths.item.setYRange(-0.6, max(n - 0.4, 0.6), padding=0)
         self.paths.item.setXRange(-(PATH_LENGTH - 1), 0, padding=0.01)
+
+    def _label_paths(self, *_args) -> None:
+        """State labels on the paths' axis: as many as its height holds (one per 14 px), at least two."""
+        ids = getattr(self, "_path_ids", ())
+        if not ids:
+            return
+        height = self.paths.item.getViewBox().height()
+        fit = max(2, int(height // 14)) if height > 0 else 6
+        self.paths.item.getAxis("left").setTicks([state_ticks(ids, max_labels=fit, width=8), []])
 
     def _prepare_charts(self, setup: RunSetup) -> None:
         ids = setup.ids
