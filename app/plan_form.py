@@ -1013,6 +1013,8 @@ class PlanForm(JobPanel):
             self.fact_labels["min_burn_in"].setText("B = 0: no burn-in is needed at this run length")
         elif c.min_burn_in is not None:
             self.fact_labels["min_burn_in"].setText(f"B = {format_steps(c.min_burn_in, step)}, at this run length")
+        elif c.min_steps is None and c.min_burn_in_reason == c.min_steps_reason:
+            self.fact_labels["min_burn_in"].setText("none, for the same reason")
         else:
             self.fact_labels["min_burn_in"].setText(f"none: {c.min_burn_in_reason}")
         worst = float(np.max(c.noise_sd)) if c.noise_sd.size else 0.0

@@ -79,6 +79,7 @@ def test_flip_flop_closed_form(qtbot, panels):
     c = _checked(qtbot, form).check
     assert c.tv == 0.5 and c.verdict == "misleading" and c.min_steps is None
     assert "period 2" in form.fact_labels["min_steps"].text()
+    assert form.fact_labels["min_burn_in"].text() == "none, for the same reason"  # not said twice
     assert not form.recommend_button.isEnabled()
     ws.run_plan.update(estimator="average")
     c = _checked(qtbot, form).check
