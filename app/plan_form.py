@@ -55,6 +55,7 @@ from PySide6.QtWidgets import (
 )
 
 from core.errors import LongrunError
+from core.units import format_tv
 
 from . import palette as pal
 from .panels import PanelSpec, Workspace, fact_rows
@@ -766,11 +767,8 @@ def fmt_p(p: float) -> str:
 
 
 def fmt_tv(x: float) -> str:
-    """A total variation distance; below 1e-12 it is rounding, shown as ``≈ 0``."""
-    x = float(x)
-    if abs(x) < 1e-12:
-        return "≈ 0"
-    return f"{x:.3g}"
+    """An exact total variation distance; below 1e-12 it is rounding, shown as ``≈ 0``."""
+    return format_tv(x, zero="≈ 0")
 
 
 def fmt_signed(x: float) -> str:

@@ -97,6 +97,7 @@ from typing import Generator, Iterator
 import numpy as np
 
 from .errors import LimitError, OptionError
+from .units import TV_ROUNDING, format_tv
 
 __all__ = [
     "MAX_REPLICATES",
@@ -1965,13 +1966,14 @@ def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, ta
     for j, note in sorted(notes.items()):
         findings.append(f"R-hat of state {ids[j]!r}: {note}.")
     if window is not None and tv_win is not None:
-        if tv_win < 1e-12:  # round-off of an exact zero, or as good
+        if tv_win < TV_ROUNDING:  # round-off of an exact zero, or as good
             findings.append("exactly, the kept draws average to the long-run law (TV below 1e-12): this burn-in "
                             "and run length leave no start-up bias.")
         else:
             findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
                             "(the start-up bias of this burn-in and run length).")
-    findings.append(f"d_start(B+T) = TV(pi0 P^{total}, long-run law) = {curve[-1]:.3g}.")
+    d_end = format_tv(curve[-1], zero="below 1e-12 (zero to rounding)")
+    findings.append(f"d_start(B+T) = TV(pi0 P^{total}, long-run law) {'is ' + d_end if d_end[0] == 'b' else '= ' + d_end}.")
     # the verdict
     if gof.impossible or (np.isfinite(gof.pvalue) and gof.pvalue < ENGINE_ALPHA):
         why = ("replicates sit in states that pi0 P^t gives probability 0" if gof.impossible
@@ -1984,7 +1986,7 @@ def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, ta
     rhat_high = worst_rhat is not None and worst_rhat > RHAT_THRESHOLD and not several
     bias_hint = ""
     if tv_win is not None:
-        bias_hint = f"; this burn-in and run length alone give TV {tv_win:.3g} (exact)"
+        bias_hint = f"; this burn-in and run length alone give TV {format_tv(tv_win)} (exact)"
     if disagree:
         k = len(disagree)
         beyond = f"{k} state{'s' if k != 1 else ''} beyond {z_crit:.2f} standard errors"

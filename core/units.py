@@ -11,7 +11,8 @@ from __future__ import annotations
 import math
 from typing import Any
 
-__all__ = ["format_count", "format_steps", "format_duration", "step_seconds", "unit_seconds"]
+__all__ = ["format_count", "format_steps", "format_duration", "format_tv", "step_seconds", "unit_seconds",
+           "TV_ROUNDING"]
 
 _DAY = 86400.0
 _YEAR = 365.25 * _DAY  # Julian year
@@ -48,6 +49,21 @@ def step_seconds(step: Any) -> float | None:
         return None
     v = float(step.value)
     return v * s if math.isfinite(v) and v > 0 else None
+
+
+#: An exact total variation distance below this is rounding: double precision carries laws to an
+#: absolute 1e-16 or so per state, so the distance of two laws that agree has that size, not 0.
+TV_ROUNDING = 1e-12
+
+
+def format_tv(x: float, *, zero: str = "< 1e-12") -> str:
+    """An exact total variation distance, ``zero`` when it is below :data:`TV_ROUNDING`.
+
+    >>> format_tv(0.01234), format_tv(3.6e-17), format_tv(0.0, zero="≈ 0")
+    ('0.0123', '< 1e-12', '≈ 0')
+    """
+    x = float(x)
+    return zero if abs(x) < TV_ROUNDING else f"{x:.3g}"
 
 
 def _sig(x: float, digits: int = 3) -> str:

@@ -16,6 +16,7 @@ from __future__ import annotations
 import sys
 import time
 
+from ..units import format_tv
 from ._common import (add_file_argument, load_valid, nonnegative_int, positive_int, probability, seed_int,
                       state_index, stderr_is_tty, write_stdout)
 
@@ -220,7 +221,7 @@ def render(report, chain, path: str, start_text: str) -> str:
         lines.append(f"  time average vs long run TV {report.tv_time_average:.3g}"
                      + (f"; |z| > {report.z_crit:.2f} flags a state (family-wise 1e-3)"
                         if report.z is not None else ""))
-    lines.append(f"  d_start(B+T)             {report.curve_tv[-1]:.3g} (exact distance of pi0 P^(B+T) from the long "
+    lines.append(f"  d_start(B+T)             {format_tv(report.curve_tv[-1])} (exact distance of pi0 P^(B+T) from the long "
                  "run)")
     lines.append("")
     for f in report.findings:
