@@ -983,6 +983,8 @@ def _steps_phrase(t: int, step) -> str:
 
 def explain(check: PlanCheck) -> str:
     """The verdict of a plan check in one plain sentence, in the chain's step unit."""
+    from .units import format_tv
+
     plan = check.plan
     ids = check.ids if check.ids is not None else tuple(f"state {i}" for i in range(len(check.long_run)))
 
@@ -1003,7 +1005,8 @@ def explain(check: PlanCheck) -> str:
         noise = float(np.max(check.noise_sd))
         return (
             f"Sound: a run of {run} from {start}{burn}, judged by {how}, lands within "
-            f"{check.tv:.2g} of the long-run law (tolerance {plan.tolerance:g}); what is left is "
+            f"{format_tv(check.tv, zero='1e-12', digits=2)} of the long-run law (tolerance "
+            f"{plan.tolerance:g}); what is left is "
             f"Monte Carlo noise of about \u00b1{noise:.2g} per state with {plan.replicates} replicates."
         )
     head = (

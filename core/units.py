@@ -56,14 +56,14 @@ def step_seconds(step: Any) -> float | None:
 TV_ROUNDING = 1e-12
 
 
-def format_tv(x: float, *, zero: str = "< 1e-12") -> str:
-    """An exact total variation distance, ``zero`` when it is below :data:`TV_ROUNDING`.
+def format_tv(x: float, *, zero: str = "< 1e-12", digits: int = 3) -> str:
+    """An exact total variation distance (or a difference of exact laws), ``zero`` below :data:`TV_ROUNDING`.
 
-    >>> format_tv(0.01234), format_tv(3.6e-17), format_tv(0.0, zero="≈ 0")
-    ('0.0123', '< 1e-12', '≈ 0')
+    >>> format_tv(0.01234), format_tv(3.6e-17), format_tv(0.0, zero="≈ 0"), format_tv(0.01234, digits=2)
+    ('0.0123', '< 1e-12', '≈ 0', '0.012')
     """
     x = float(x)
-    return zero if abs(x) < TV_ROUNDING else f"{x:.3g}"
+    return zero if abs(x) < TV_ROUNDING else f"{x:.{digits}g}"
 
 
 def _sig(x: float, digits: int = 3) -> str:

@@ -23,7 +23,7 @@ TABLE_ROWS = 25
 
 def add_arguments(parser):
     add_file_argument(parser)
-    parser.add_argument("--steps", required=True, type=positive_int, metavar="T",
+    parser.add_argument("--steps", "-T", required=True, type=positive_int, metavar="T",
                         help="steps simulated after the burn-in (e.g. 10000 or 1e6)")
     parser.add_argument("--start", metavar="ID", default=None,
                         help="start state (default: the first state in the file)")
@@ -31,7 +31,7 @@ def add_arguments(parser):
                         help="steps discarded before the run (default 0)")
     parser.add_argument("--stride", type=positive_int, default=1, metavar="S",
                         help="the time average samples every S steps (default 1)")
-    parser.add_argument("--replicates", type=positive_int, default=None, metavar="R",
+    parser.add_argument("--replicates", "-R", type=positive_int, default=None, metavar="R",
                         help="independent replicates (default 100)")
     parser.add_argument("--estimator", choices=("final", "average"), default="final",
                         help="'final': where the replicates are at the last step (default); "
@@ -70,7 +70,7 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
     """The readable report of a plan check."""
     import numpy as np
 
-    from ..units import format_steps
+    from ..units import format_steps, format_tv
 
     plan = check.plan
     ids = chain.ids
@@ -87,7 +87,8 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
         f"  burn-in       {format_steps(plan.burn_in, chain.step) if plan.burn_in else 'none'}",
         f"  replicates    {plan.replicates:,}",
         f"  estimator     {est_name}",
-        f"  verdict       {check.verdict.upper()}: the estimate converges to a law {check.tv:.4g} away "
+        f"  verdict       {check.verdict.upper()}: the estimate converges to a law "
+        f"{format_tv(check.tv, zero='less than 1e-12', digits=4)} away "
         f"(total variation) from the long run; tolerance {plan.tolerance:g}",
         "",
     ]
@@ -100,7 +101,7 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
     for i in order:
         lines.append(
             f"  {ids[i]:<{w}}  {check.expected_estimate[i]:>14.6g}  {check.long_run[i]:>12.6g}  "
-            f"{check.bias[i]:>+11.3g}  {check.noise_sd[i]:>10.3g}"
+            f"{_signed(check.bias[i]):>11}  {check.noise_sd[i]:>10.3g}"
         )
     if chain.n > TABLE_ROWS:
         lines.append(f"  ({chain.n - TABLE_ROWS} more states with smaller bias; --json lists all)")
@@ -111,13 +112,22 @@ def render(check, chain, path: str, *, start_given: bool = True) -> str:
         )
     else:
         lines.append(f"  shortest sound run      none: {check.min_steps_reason}")
-    if check.min_burn_in is not None:
+    if check.min_burn_in == 0:
+        lines.append("  shortest sound burn-in  none needed at this run length")
+    elif check.min_burn_in is not None:
         lines.append(f"  shortest sound burn-in  {format_steps(check.min_burn_in, chain.step)} at this run length")
     else:
         lines.append(f"  shortest sound burn-in  none: {check.min_burn_in_reason}")
     lines.append(f"  noise                   {check.noise_method}")
     lines += ["", _wrap(check.sentence)]
     return "\n".join(lines)
+
+
+def _signed(x: float) -> str:
+    """A difference of exact laws: ``0`` below the rounding level (see :func:`core.units.format_tv`)."""
+    from ..units import TV_ROUNDING
+
+    return "0" if abs(x) < TV_ROUNDING else f"{x:+.3g}"
 
 
 def _wrap(text: str, width: int = 92) -> str:

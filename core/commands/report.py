@@ -34,7 +34,7 @@ def add_arguments(parser):
     parser.add_argument("-o", "--output", required=True, metavar="OUT",
                         help="report file: .html (self-contained) or .pdf")
     g = parser.add_argument_group("simulation plan (as in check-plan; --steps turns the plan check on)")
-    g.add_argument("--steps", type=positive_int, default=None, metavar="T",
+    g.add_argument("--steps", "-T", type=positive_int, default=None, metavar="T",
                    help="steps simulated after the burn-in (e.g. 10000 or 1e6)")
     g.add_argument("--start", metavar="ID", default=None,
                    help="start state (default: the first state in the file)")
@@ -42,7 +42,7 @@ def add_arguments(parser):
                    help="steps discarded before the run (default 0)")
     g.add_argument("--stride", type=positive_int, default=None, metavar="S",
                    help="the time average samples every S steps (default 1)")
-    g.add_argument("--replicates", type=positive_int, default=None, metavar="R",
+    g.add_argument("--replicates", "-R", type=positive_int, default=None, metavar="R",
                    help="independent replicates (default 100)")
     g.add_argument("--estimator", choices=("final", "average"), default=None,
                    help="'final': where the replicates are at the last step (default); "

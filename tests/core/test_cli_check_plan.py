@@ -160,3 +160,21 @@ def test_console_entry_point(tmp_path):
         capture_output=True, text=True, cwd=ROOT, check=True,
     )
     assert json.loads(out.stdout)["verdict"] == "sound"
+
+
+def test_a_plan_at_the_long_run_law_reads_as_such(capsys, exact_tv):
+    # After 2,000 days the pump sample is exactly at TV ~1e-52 from its long-run law (mpmath,
+    # tests/core/conftest.py): the report must not print double-precision rounding (~1e-16) as a
+    # bias; it says the distance is below 1e-12, the biases are 0 and no burn-in is needed.
+    import mpmath as mp
+
+    sample = ROOT / "sample_models" / "pump_wear.json"
+    assert exact_tv(load_chain(sample).matrix(), 0, 2000) < mp.mpf("1e-40")
+    assert main(["check-plan", str(sample), "-R", "1000", "-T", "2000"]) == 0
+    out = capsys.readouterr().out
+    assert "converges to a law less than 1e-12 away" in out
+    rows = [ln.split() for ln in out.splitlines() if ln.split()[:1] in (["new"], ["worn"], ["degraded"], ["failed"])]
+    assert len(rows) == 4 and all(r[3] == "0" for r in rows)
+    assert "shortest sound burn-in  none needed at this run length" in out
+    assert "lands within 1e-12 of the long-run law" in " ".join(out.split())
+    assert "e-16" not in out and "e-17" not in out

@@ -184,37 +184,21 @@ def test_json_names_states_in_notes_and_findings(capsys):
         assert sid in ("new", "worn", "degraded", "failed") and note
 
 
-def test_exact_distance_is_printed_to_its_accuracy(capsys):
-    # d_start(B+T) = TV(pi0 P^t, pi) against mpmath at 80 digits (rows renormalised exactly, pi by
-    # solving pi (P - I) = 0): at t = 20 the printed value agrees to its 3 digits; at t = 2000 the
-    # exact value is ~1e-52 and double precision can only say it is below the rounding level.
+def test_exact_distance_is_printed_to_its_accuracy(capsys, exact_tv):
+    # d_start(B+T) = TV(pi0 P^t, pi) against mpmath at 80 digits (tests/core/conftest.py): at t = 20
+    # the printed value agrees to its 3 digits; at t = 2000 the exact value is ~1e-52 and double
+    # precision can only say it is below the rounding level.
     import mpmath as mp
 
     from core.io import load_chain
 
     P = load_chain(SAMPLE).matrix()
-    n = P.shape[0]
-
-    def exact_tv(t):
-        with mp.workdps(80):
-            M = mp.matrix(P.tolist())
-            for i in range(n):
-                s = mp.fsum(M[i, j] for j in range(n))
-                for j in range(n):
-                    M[i, j] /= s
-            A = M.T - mp.eye(n)
-            for j in range(n):
-                A[n - 1, j] = 1
-            pi = mp.lu_solve(A, mp.matrix([0] * (n - 1) + [1]))
-            row = (M ** t)[0, :]
-            return mp.fsum(abs(row[j] - pi[j]) for j in range(n)) / 2
-
     for T in (20, 2000):
         assert main(["simulate", str(SAMPLE), "-R", "200", "-T", str(T), "--seed", "3"]) == 0
         out = capsys.readouterr().out
         shown = next(ln for ln in out.splitlines() if ln.strip().startswith("d_start(B+T)")).split()[1]
         if T == 20:
-            assert float(shown) == pytest.approx(float(exact_tv(T)), rel=5e-3)
+            assert float(shown) == pytest.approx(float(exact_tv(P, 0, T)), rel=5e-3)
         else:
-            assert exact_tv(T) < mp.mpf("1e-40")
+            assert exact_tv(P, 0, T) < mp.mpf("1e-40")
             assert shown == "<" and "is below 1e-12 (zero to rounding)" in out
