@@ -46,6 +46,44 @@ _NUMBER_RE = re.compile(rf"^{_NUMBER}$")
 _FRACTION_RE = re.compile(rf"^({_NUMBER})\s*/\s*({_NUMBER})$")
 _PERCENT_RE = re.compile(rf"^({_NUMBER})\s*%$")
 _NONFINITE_RE = re.compile(r"^[+-]?(nan|inf|infinity)$", re.IGNORECASE)
+# the same numbers as _NUMBER, in parts: sign, digits before and after the point, exponent
+_DECIMAL_RE = re.compile(r"^([+-]?)(?:(\d+)\.?(\d*)|\.(\d+))(?:[eE]([+-]?\d+))?$")
+#: Exponents beyond this take the general (Fraction) path.
+_DECIMAL_EXPONENT = 400
+
+
+def _as_decimal(raw: Any) -> tuple[int, int] | None:
+    """``(m, k)`` with ``raw == m / 10**k`` exactly, for an int, a float or a plain decimal text; else None.
+
+    The fast path of validation: integers instead of fractions for what nearly
+    every chain holds (``parse_probability`` reads the same values, slower).
+    """
+    if isinstance(raw, bool):
+        return None
+    if isinstance(raw, int):
+        return raw, 0
+    if isinstance(raw, float):
+        if not math.isfinite(raw):
+            return None
+        raw = repr(raw)
+    elif not isinstance(raw, str):
+        return None
+    m = _DECIMAL_RE.match(raw.strip())
+    if m is None:
+        return None
+    sign, whole, frac, only_frac, exp = m.groups()
+    if only_frac is not None:
+        whole, frac = "0", only_frac
+    e = int(exp) if exp else 0
+    if abs(e) > _DECIMAL_EXPONENT:
+        return None
+    k = len(frac) - e
+    mant = int(whole + frac)
+    if sign == "-":
+        mant = -mant
+    if k < 0:
+        return mant * 10 ** (-k), 0
+    return mant, k
 
 
 class _Rest:
@@ -302,7 +340,7 @@ class Chain:
 
     # -- validation ---------------------------------------------------------
     @cached_property
-    def _analysis(self) -> tuple[tuple[Problem, ...], dict[tuple[str, str], Fraction]]:
+    def _analysis(self) -> tuple[tuple[Problem, ...], dict[tuple[str, str], Fraction], dict[str, Fraction]]:
         return _validate(self)
 
     @property
@@ -323,9 +361,13 @@ class Chain:
         return dict(self._analysis[1])
 
     def row_sum(self, sid: str) -> Fraction:
-        """Exact sum of the state's parsed probabilities (``rest`` resolved)."""
-        vals = self._analysis[1]
-        return sum((v for (a, _), v in vals.items() if a == sid), Fraction(0))
+        """Exact sum of the state's parsed probabilities (``rest`` resolved; 0 for a broken row)."""
+        return self._analysis[2].get(sid, Fraction(0))
+
+    @property
+    def row_sums(self) -> dict[str, Fraction]:
+        """``{state: exact row sum}`` (``rest`` resolved) of the rows without a broken entry."""
+        return dict(self._analysis[2])
 
     def check(self) -> "Chain":
         """Return ``self`` if valid, else raise :class:`ValidationError`."""
@@ -448,8 +490,19 @@ def _fmt_fraction(x: Fraction) -> str:
     return f"{f:.12g}"
 
 
-def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], Fraction]]:
-    """Collect every problem of ``chain``; return them and the parsed entries."""
+_POW10 = [10**k for k in range(64)]
+
+
+def _where(t: Transition) -> str:
+    return f"transition {t.source!r} -> {t.target!r}"
+
+
+def _pow10(k: int) -> int:
+    return _POW10[k] if k < 64 else 10**k
+
+
+def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], Fraction], dict[str, Fraction]]:
+    """Collect every problem of ``chain``; return them, the parsed entries and the exact row sums."""
     problems: list[Problem] = []
     values: dict[tuple[str, str], Fraction] = {}
 
@@ -486,17 +539,17 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
     rest_of: dict[str, tuple[str, str]] = {}
     seen_t: set[tuple[str, str]] = set()
     sums: dict[str, Fraction] = {}
+    dec_sums: dict[str, list[int]] = {}  # [m, k]: the row's decimal entries sum to m / 10**k
     bad_rows: set[str] = set()
     for k, t in enumerate(chain.transitions):
         key = (t.source, t.target)
-        where = f"transition {t.source!r} -> {t.target!r}"
-        unknown = [x for x in key if x not in seen]
-        if unknown:
+        if t.source not in seen or t.target not in seen:
+            unknown = [x for x in key if x not in seen]
             for x in dict.fromkeys(unknown):
                 problems.append(
                     Problem(
                         "unknown-state",
-                        f"{where} (number {k + 1}) refers to a state {x!r} that does not exist",
+                        f"{_where(t)} (number {k + 1}) refers to a state {x!r} that does not exist",
                         state=t.source if t.source in seen else None,
                         transition=key,
                         value=x,
@@ -507,7 +560,7 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             problems.append(
                 Problem(
                     "duplicate-transition",
-                    f"{where} is given more than once (number {k + 1})",
+                    f"{_where(t)} is given more than once (number {k + 1})",
                     state=t.source,
                     transition=key,
                     value=t.p,
@@ -516,12 +569,29 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             bad_rows.add(t.source)
             continue
         seen_t.add(key)
+        dec = _as_decimal(t.p)
+        if dec is not None:
+            m, k = dec
+            if m < 0 or m > _pow10(k):
+                v = Fraction(m, _pow10(k))  # the problem is reported below, as for any value
+            else:
+                if m:
+                    values[key] = Fraction(m, _pow10(k))
+                acc = dec_sums.get(t.source)
+                if acc is None:
+                    dec_sums[t.source] = [m, k]
+                elif k > acc[1]:
+                    acc[0] = acc[0] * _pow10(k - acc[1]) + m
+                    acc[1] = k
+                else:
+                    acc[0] += m * _pow10(acc[1] - k)
+                continue
         try:
-            v = parse_probability(t.p)
+            v = parse_probability(t.p) if dec is None else v
         except ValueError as exc:
             code = "not-finite" if "not a finite number" in str(exc) else "unparseable"
             problems.append(
-                Problem(code, f"{where}: {exc}", state=t.source, transition=key, value=t.p)
+                Problem(code, f"{_where(t)}: {exc}", state=t.source, transition=key, value=t.p)
             )
             bad_rows.add(t.source)
             continue
@@ -545,7 +615,7 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             problems.append(
                 Problem(
                     "negative",
-                    f"{where}: probability {t.p!r} is negative",
+                    f"{_where(t)}: probability {t.p!r} is negative",
                     state=t.source,
                     transition=key,
                     value=t.p,
@@ -557,7 +627,7 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             problems.append(
                 Problem(
                     "above-one",
-                    f"{where}: probability {t.p!r} is greater than 1",
+                    f"{_where(t)}: probability {t.p!r} is greater than 1",
                     state=t.source,
                     transition=key,
                     value=t.p,
@@ -568,6 +638,9 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
         if v != 0:
             values[key] = v
         sums[t.source] = sums.get(t.source, Fraction(0)) + v
+
+    for src, (m, k) in dec_sums.items():
+        sums[src] = sums.get(src, Fraction(0)) + Fraction(m, _pow10(k))
 
     for src, key in rest_of.items():
         if src in bad_rows:
@@ -591,12 +664,12 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             values[key] = r
         sums[src] = sums.get(src, Fraction(0)) + max(r, Fraction(0))
 
+    with_out = {a for (a, _) in values}  # values holds the positive entries only
     for s in dict.fromkeys(x for x in chain.ids if x):
         if s in bad_rows:
             continue
         total = sums.get(s)
-        has_out = any(a == s and v > 0 for (a, _), v in values.items())
-        if total is None or not has_out:
+        if total is None or s not in with_out:
             problems.append(
                 Problem(
                     "no-outgoing",
@@ -617,5 +690,7 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
                 )
             )
     # Drop values of rows that are broken so no partial row leaks into matrices.
-    values = {k: v for k, v in values.items() if k[0] not in bad_rows}
-    return tuple(problems), values
+    if bad_rows:
+        values = {k: v for k, v in values.items() if k[0] not in bad_rows}
+    totals = {src: v for src, v in sums.items() if src not in bad_rows}
+    return tuple(problems), values, totals

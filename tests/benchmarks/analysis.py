@@ -15,6 +15,10 @@ Prints, in one run:
    1e-1 down to 1e-15; plus the relative error of the spectral gap (engine vs
    ``1 - |lambda_2|`` from ``eig``).  Target: <= 1e-13 at coupling 1e-15.
 3. A mixing time of ~1e12 steps: products used and agreement with mpmath.
+4. Validation of what the user typed (exact rational row sums): the time to
+   validate a dense chain of n states typed as decimals (n^2 transitions),
+   divided by the time to merely read the same texts as ``fractions.Fraction``
+   values and add them up row by row, the plain way to sum them exactly.
 
 Run: ``.venv/bin/python tests/benchmarks/analysis.py`` (add ``--quick`` to skip n = 1000).
 Timings are the best of a few runs, so that other load on the machine
@@ -205,11 +209,37 @@ def mixing_line():
     print(f"   (plain numpy matrix_power to 2^40: row sums off by {np.max(np.abs(plain.sum(axis=1) - 1)):.1e})")
 
 
+def validation_line(n):
+    from fractions import Fraction
+
+    from core.model import Chain, State, Transition
+
+    rng = np.random.default_rng(5)
+    P = rng.random((n, n))
+    P /= P.sum(axis=1, keepdims=True)
+    ids = [f"s{i}" for i in range(n)]
+    texts = [[repr(float(x)) for x in row] for row in P]
+    trans = tuple(Transition(ids[i], ids[j], texts[i][j]) for i in range(n) for j in range(n))
+    chain = Chain(states=tuple(State(s) for s in ids), transitions=trans)
+    t0 = time.perf_counter()
+    problems = chain.problems
+    t_validate = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    sums = [sum((Fraction(x) for x in row), Fraction(0)) for row in texts]
+    t_plain = time.perf_counter() - t0
+    assert all(abs(s - 1) < Fraction(1, 10**9) for s in sums)
+    print(f"\nvalidation of a dense {n}-state chain typed as decimals ({n * n:,} transitions): "
+          f"{t_validate:.2f} s ({t_validate / (n * n) * 1e6:.1f} us each; "
+          f"{len(problems)} problems); reading and summing the texts as Fractions: {t_plain:.2f} s")
+    print(f"ratio validation / plain Fraction sums {t_validate / t_plain:.2f}")
+
+
 def main(argv):
     sizes = (10, 100) if "--quick" in argv else (10, 100, 1000)
     speed_table(sizes)
     accuracy_table()
     mixing_line()
+    validation_line(300 if "--quick" in argv else 1000)
 
 
 if __name__ == "__main__":

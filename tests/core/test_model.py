@@ -3,6 +3,8 @@ from fractions import Fraction
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from core.errors import ValidationError
 from core.model import Chain, State, Transition, parse_probability
@@ -238,3 +240,45 @@ def test_from_matrix_exact_fractions_round_trip():
     assert c.is_valid
     assert c.exact_probabilities[("N", "S")] == F(1, 2)
     assert c.transition("N", "N") is None
+
+
+# ---------------------------------------------------------------------------
+# the validator's integer fast path reads decimals exactly as Fraction does
+
+
+@settings(max_examples=300)
+@given(st.one_of(
+    st.decimals(allow_nan=False, allow_infinity=False, places=None).map(str),
+    st.floats(allow_nan=False, allow_infinity=False),
+    st.integers(-10**30, 10**30),
+    st.from_regex(r"\A[+-]?(\d{1,25}\.?\d{0,25}|\.\d{1,25})([eE][+-]?\d{1,3})?\Z"),
+))
+def test_fast_decimal_path_is_exactly_fractions(raw):
+    # Python's fractions.Fraction (the reference) reads the same text to the same exact value
+    from core.model import _as_decimal
+
+    dec = _as_decimal(raw)
+    want = Fraction(repr(raw)) if isinstance(raw, float) else Fraction(raw)
+    if dec is None:  # only exponents beyond 400 take the general reader
+        assert abs(int(str(raw).lower().split("e")[1])) > 400
+        assert parse_probability(raw) == want
+    else:
+        m, k = dec
+        assert Fraction(m, 10**k) == want
+
+
+def test_fast_path_leaves_other_forms_to_the_general_reader():
+    from core.model import _as_decimal
+
+    for raw in ("1/3", "5%", "rest", "", ".", "1e", "0x10", "nan", "inf", True, None, "1e-401"):
+        assert _as_decimal(raw) is None, raw
+
+
+def test_row_sums_are_exact_and_skip_broken_rows():
+    c = Chain(states=(State("a"), State("b"), State("c")),
+              transitions=(Transition("a", "b", "0.1"), Transition("a", "a", "rest"),
+                           Transition("b", "a", "1/3"), Transition("b", "b", 0.6),
+                           Transition("c", "c", "-0.5")))
+    assert c.row_sums == {"a": Fraction(1), "b": Fraction(1, 3) + Fraction(6, 10)}
+    assert c.row_sum("b") == Fraction(14, 15) and c.row_sum("c") == 0
+    assert [p.code for p in c.problems] == ["negative", "row-sum"]
