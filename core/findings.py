@@ -910,11 +910,12 @@ def _tiny(ctx):
     chain = ctx.chain
     idx = chain.index
     limit = Fraction(repr(TINY_PROBABILITY))
+    ln, ld = limit.numerator, limit.denominator
     items = sorted(
         (
             (v, a, b)
             for (a, b), v in chain.exact_probabilities.items()
-            if float(v) < 2 * TINY_PROBABILITY and 0 < v < limit  # cheap pre-filter first
+            if v.numerator * ld < ln * v.denominator and v > 0  # v < limit, in integers (fast)
         ),
         key=lambda t: t[0],
     )
@@ -991,21 +992,24 @@ def _near_one(ctx):
     chain = ctx.chain
     idx = chain.index
     exact = chain.exact_probabilities  # parsed at validation, 'rest' resolved, zeros dropped
+    # Only values within 1e-13 of 1 can be flagged (15 nines, or a double whose remainder is off
+    # by more than 0.1%: half an ulp of 1 is 5.6e-17); found in integers first, as there are rarely any
+    near = {k: v for k, v in exact.items() if (v.denominator - v.numerator) * 10**13 <= v.denominator}
+    if not near:
+        return
+    rows = {a for a, _ in near}
     live: dict[str, int] = {}  # transitions per row that carry probability (or are 'rest')
     for t in chain.transitions:
-        if (t.source, t.target) in exact or (isinstance(t.p, str) and t.p.strip().lower() == "rest"):
+        if t.source in rows and ((t.source, t.target) in exact
+                                 or (isinstance(t.p, str) and t.p.strip().lower() == "rest")):
             live[t.source] = live.get(t.source, 0) + 1
     hits = []
     for t in chain.transitions:
-        if isinstance(t.p, str) and ("/" in t.p or t.p.strip().lower() == "rest"):
-            continue  # a fraction or 'rest' keeps its remainder exactly
-        v = exact.get((t.source, t.target))
+        v = near.get((t.source, t.target))
         if v is None:
             continue
-        # Only values within 1e-13 of 1 can be flagged (15 nines, or a double whose
-        # remainder is off by more than 0.1%: half an ulp of 1 is 5.6e-17).
-        if float(v) < 1 - 1e-13:
-            continue
+        if isinstance(t.p, str) and ("/" in t.p or t.p.strip().lower() == "rest"):
+            continue  # a fraction or 'rest' keeps its remainder exactly
         if isinstance(t.p, float) and v == 1:
             if live.get(t.source, 0) > 1:
                 hits.append((t, None, None, None))

@@ -393,11 +393,21 @@ class Chain:
         return self._matrix_unchecked()
 
     def _matrix_unchecked(self) -> np.ndarray:
+        return self._float_matrix.copy()
+
+    @cached_property
+    def _float_matrix(self) -> np.ndarray:
         n = self.n
         P = np.zeros((n, n))
-        idx = self.index
-        for (a, b), v in self._analysis[1].items():
-            P[idx[a], idx[b]] = float(v)
+        vals = self._analysis[1]
+        if vals:
+            idx = self.index
+            rows = np.fromiter((idx[a] for a, _ in vals), dtype=np.intp, count=len(vals))
+            cols = np.fromiter((idx[b] for _, b in vals), dtype=np.intp, count=len(vals))
+            # int / int is correctly rounded: the same double as float(Fraction), faster
+            P[rows, cols] = np.fromiter((v.numerator / v.denominator for v in vals.values()), dtype=np.float64,
+                                        count=len(vals))
+        P.setflags(write=False)
         return P
 
     # -- edits (each returns a new chain) ----------------------------------
