@@ -581,20 +581,20 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
         seen_t.add(key)
         dec = _as_decimal(t.p)
         if dec is not None:
-            m, k = dec
-            if m < 0 or m > _pow10(k):
-                v = Fraction(m, _pow10(k))  # the problem is reported below, as for any value
+            m, d = dec  # the value is m / 10**d
+            if m < 0 or m > _pow10(d):
+                v = Fraction(m, _pow10(d))  # the problem is reported below, as for any value
             else:
                 if m:
-                    values[key] = Fraction(m, _pow10(k))
+                    values[key] = Fraction(m, _pow10(d))
                 acc = dec_sums.get(t.source)
                 if acc is None:
-                    dec_sums[t.source] = [m, k]
-                elif k > acc[1]:
-                    acc[0] = acc[0] * _pow10(k - acc[1]) + m
-                    acc[1] = k
+                    dec_sums[t.source] = [m, d]
+                elif d > acc[1]:
+                    acc[0] = acc[0] * _pow10(d - acc[1]) + m
+                    acc[1] = d
                 else:
-                    acc[0] += m * _pow10(acc[1] - k)
+                    acc[0] += m * _pow10(acc[1] - d)
                 continue
         try:
             v = parse_probability(t.p) if dec is None else v
@@ -649,8 +649,8 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             values[key] = v
         sums[t.source] = sums.get(t.source, Fraction(0)) + v
 
-    for src, (m, k) in dec_sums.items():
-        sums[src] = sums.get(src, Fraction(0)) + Fraction(m, _pow10(k))
+    for src, (m, d) in dec_sums.items():
+        sums[src] = sums.get(src, Fraction(0)) + Fraction(m, _pow10(d))
 
     for src, key in rest_of.items():
         if src in bad_rows:

@@ -282,3 +282,16 @@ def test_row_sums_are_exact_and_skip_broken_rows():
     assert c.row_sums == {"a": Fraction(1), "b": Fraction(1, 3) + Fraction(6, 10)}
     assert c.row_sum("b") == Fraction(14, 15) and c.row_sum("c") == 0
     assert [p.code for p in c.problems] == ["negative", "row-sum"]
+
+
+def test_rows_mixing_decimals_fractions_and_percentages_sum_exactly():
+    # 1/3 + 0.5 + 1/6 = 1 and 0.25 + 25% + 0.5 = 1 exactly; 0.1 + 0.2 + 0.7 = 1 exactly in
+    # decimals (though not in doubles); 'rest' after a fraction is exact too
+    c = Chain(states=(State("a"), State("b"), State("c"), State("d")),
+              transitions=(Transition("a", "a", "1/3"), Transition("a", "b", 0.5), Transition("a", "c", "1/6"),
+                           Transition("b", "a", "0.25"), Transition("b", "b", "25%"), Transition("b", "c", "0.5"),
+                           Transition("c", "a", 0.1), Transition("c", "b", "0.2"), Transition("c", "c", 0.7),
+                           Transition("d", "a", "2/7"), Transition("d", "d", "rest")))
+    assert c.problems == ()
+    assert set(c.row_sums.values()) == {Fraction(1)}
+    assert c.exact_probabilities[("d", "d")] == Fraction(5, 7)
