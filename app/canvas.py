@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from fractions import Fraction
 from typing import Callable, Iterable
 
-from PySide6.QtCore import QEvent, QLineF, QPointF, QRectF, Qt, Signal
+from PySide6.QtCore import QEvent, QLineF, QPointF, QRect, QRectF, Qt, Signal
 from PySide6.QtGui import (
     QBrush,
     QColor,
@@ -43,6 +43,7 @@ from PySide6.QtWidgets import (
     QGraphicsLineItem,
     QGraphicsScene,
     QGraphicsView,
+    QLabel,
     QLineEdit,
     QStyleOptionGraphicsItem,
     QWidget,
@@ -60,6 +61,10 @@ RIM = 0.62            # inner share of the radius that moves; outside it connect
 LABEL_LOD = 0.6       # arrow labels are hidden below this zoom (too small to read)
 SMOOTH_LOD = 0.6      # arrows are antialiased from this zoom on (and not while dragging)
 OVERVIEW_LOD = 0.3    # below this zoom arrows are drawn as one batch of plain lines
+#: Chains with more transitions than this are drawn as states and plain lines, without arrow items
+#: (an arrow item with its label costs about a millisecond and tens of kilobytes; a dense matrix of
+#: 500 states would take minutes and gigabytes); their probabilities are edited in the matrix grid.
+MAX_DRAWN_ARROWS = 3000
 MAX_ZOOM = 4.0
 MIN_ZOOM = 0.05
 _drag_tokens = itertools.count(1)
@@ -587,7 +592,7 @@ class OverviewEdges(QGraphicsItem):
         return groups
 
     def paint(self, painter: QPainter, option: QStyleOptionGraphicsItem, widget: QWidget | None = None) -> None:
-        if self.canvas.lod >= OVERVIEW_LOD:
+        if self.canvas.lod >= OVERVIEW_LOD and not self.canvas.lines_only:
             return
         normal, rare, bad = self._groups or self._build()
         # thin, opaque, aliased lines take the raster engine's fast path (tens of times
@@ -744,6 +749,13 @@ class ChainCanvas(QGraphicsView):
 
         self.lod = 1.0
         self.interacting = False
+        self.lines_only = False  # more than MAX_DRAWN_ARROWS transitions: no arrow items
+        self.notice = QLabel(self)
+        self.notice.setObjectName("canvasNotice")
+        self.notice.setWordWrap(True)
+        self.notice.setStyleSheet("QLabel#canvasNotice { background: rgba(255, 255, 255, 235); "
+                                  "border: 1px solid rgba(0, 0, 0, 40); border-radius: 6px; padding: 6px; }")
+        self.notice.hide()
         self._deferred: set[str] = set()
         self._bg_cache: tuple[float, QBrush] | None = None
         self._overview = OverviewEdges(self)
@@ -782,10 +794,17 @@ class ChainCanvas(QGraphicsView):
         self.states.clear()
         self.arrows.clear()
         self._incident.clear()
+        self._overview._lines.clear()
+        self._overview.invalidate()
         chain = self.document.chain
         for s in chain.states:
             if s.id not in self.states:
                 self._add_state_item(s)
+        self.lines_only = len(chain.transitions) > MAX_DRAWN_ARROWS
+        self._show_notice(chain)
+        if self.lines_only:
+            self._draw_lines(chain)
+            return
         for t in chain.transitions:
             key = (t.source, t.target)
             if key not in self.arrows and t.source in self.states and t.target in self.states:
@@ -797,6 +816,32 @@ class ChainCanvas(QGraphicsView):
         self._label_cells.clear()
         self._label_home.clear()
         self._place_labels(list(self.arrows))
+        self._apply_report_marks()
+        self._doc_selection_changed()
+        self._scene.update()
+
+    def _show_notice(self, chain: Chain) -> None:
+        if not self.lines_only:
+            self.notice.hide()
+            return
+        self.notice.setText(
+            f"{len(chain.transitions):,} transitions, more than the {MAX_DRAWN_ARROWS:,} drawn as arrows: "
+            "they are shown as plain lines. Read and edit their probabilities in the matrix grid.")
+        self._place_legend()
+        self.notice.show()
+
+    def _draw_lines(self, chain: Chain) -> None:
+        """States, and every transition between two of them as one plain line (one batch)."""
+        ov = self._overview
+        ov._lines.clear()
+        pos = {sid: item.pos() for sid, item in self.states.items()}
+        for t in chain.transitions:
+            a, b = pos.get(t.source), pos.get(t.target)
+            if a is not None and b is not None and t.source != t.target:
+                ov._lines[(t.source, t.target)] = (0, QLineF(a, b))
+        ov.invalidate()
+        for sid in self.states:
+            self._arrange_node(sid)
         self._apply_report_marks()
         self._doc_selection_changed()
         self._scene.update()
@@ -936,6 +981,9 @@ class ChainCanvas(QGraphicsView):
         """Bring the scene from ``old`` to ``new``, touching only what changed."""
         if self._press is not None and self._press.get("mode") == "connect":
             self._end_connect(None)
+        if self.lines_only or len(new.transitions) > MAX_DRAWN_ARROWS:
+            self.rebuild()  # plain lines: redrawn whole (cheap), or leaving that mode
+            return
         moved: set[str] = set()        # states whose position changed
         rewired: set[str] = set()      # states that gained or lost an arrow
         relayout: set[tuple[str, str]] = set()
@@ -1469,6 +1517,12 @@ class ChainCanvas(QGraphicsView):
     def _place_legend(self) -> None:
         vp = self.viewport().geometry()
         self.legend.move(vp.left() + 10, vp.bottom() - self.legend.height() - 10)
+        if self.notice.isVisible() or self.lines_only:
+            w = max(200, min(560, vp.width() - 20))
+            text = self.notice.fontMetrics().boundingRect(QRect(0, 0, w - 16, 10000), Qt.TextFlag.TextWordWrap,
+                                                          self.notice.text())
+            self.notice.setFixedSize(w, text.height() + 16)  # padding 6 and border 1, each side
+            self.notice.move(vp.left() + 10, vp.top() + 10)
 
     def _begin_interaction(self) -> None:
         """Big chain being dragged: aliased drawing, no arrow labels, neighbours tidied at the end."""

@@ -339,3 +339,29 @@ def test_pinch_zooms(window, qtbot):
                              p, p, p, 0.5, QPointF(0, 0))
     assert canvas.viewportEvent(ev)
     assert canvas.zoom == pytest.approx(z0 * 1.5)
+
+
+def test_a_chain_of_many_transitions_is_drawn_as_plain_lines(window, qtbot, monkeypatch):
+    # Beyond MAX_DRAWN_ARROWS transitions the canvas makes no arrow items (each costs about a
+    # millisecond and tens of kilobytes: a dense 500-state matrix exhausted 24 GB), draws every
+    # transition as one batch of lines and says so; edits keep it so, and a chain back under the
+    # limit gets its arrows again.  (The limit is lowered here to keep the test small.)
+    import app.canvas as cv
+
+    monkeypatch.setattr(cv, "MAX_DRAWN_ARROWS", 10)
+    n = 5
+    ids = [f"s{i}" for i in range(n)]
+    dense = Chain.from_matrix([[1 / n] * n for _ in range(n)], ids)  # 25 transitions, 20 between states
+    canvas = window.canvas
+    window.document.reset(dense)
+    assert canvas.lines_only and canvas.arrows == {} and len(canvas.states) == n
+    assert len(canvas._overview._lines) == n * (n - 1)
+    assert canvas.notice.isVisible() and "25 transitions, more than the 10 drawn as arrows" in canvas.notice.text()
+    window.document.set_transition("s0", "s1", "0.1")
+    window.document.set_transition("s0", "s0", "rest")
+    assert canvas.lines_only and canvas.arrows == {}
+    ring = Chain.from_matrix([[1.0 if j == (i + 1) % n else 0.0 for j in range(n)] for i in range(n)], ids)
+    window.document.reset(ring)
+    assert not canvas.lines_only and not canvas.notice.isVisible()
+    assert sorted(canvas.arrows) == sorted((f"s{i}", f"s{(i + 1) % n}") for i in range(n))
+    assert canvas._overview._lines.keys() <= set(canvas.arrows)  # no stale lines from the plain-line mode
