@@ -17,6 +17,7 @@ and new chains and touches only the states and arrows that changed.
 """
 from __future__ import annotations
 
+import heapq
 import itertools
 import math
 from dataclasses import dataclass
@@ -65,6 +66,9 @@ OVERVIEW_LOD = 0.3    # below this zoom arrows are drawn as one batch of plain l
 #: (an arrow item with its label costs about a millisecond and tens of kilobytes; a dense matrix of
 #: 500 states would take minutes and gigabytes); their probabilities are edited in the matrix grid.
 MAX_DRAWN_ARROWS = 3000
+#: In that mode, at most this many lines (the most probable transitions): a paint costs about
+#: 16 us a line, and a quarter of a million lines is a grey disc anyway.
+MAX_DRAWN_LINES = 6000
 MAX_ZOOM = 4.0
 MIN_ZOOM = 0.05
 _drag_tokens = itertools.count(1)
@@ -824,9 +828,11 @@ class ChainCanvas(QGraphicsView):
         if not self.lines_only:
             self.notice.hide()
             return
+        shown = ("they are shown as plain lines" if len(chain.transitions) <= MAX_DRAWN_LINES
+                 else f"the {MAX_DRAWN_LINES:,} most probable are shown as plain lines")
         self.notice.setText(
             f"{len(chain.transitions):,} transitions, more than the {MAX_DRAWN_ARROWS:,} drawn as arrows: "
-            "they are shown as plain lines. Read and edit their probabilities in the matrix grid.")
+            f"{shown}. Read and edit every probability in the matrix grid.")
         self._place_legend()
         self.notice.show()
 
@@ -835,10 +841,15 @@ class ChainCanvas(QGraphicsView):
         ov = self._overview
         ov._lines.clear()
         pos = {sid: item.pos() for sid, item in self.states.items()}
-        for t in chain.transitions:
-            a, b = pos.get(t.source), pos.get(t.target)
-            if a is not None and b is not None and t.source != t.target:
-                ov._lines[(t.source, t.target)] = (0, QLineF(a, b))
+        keys = [(t.source, t.target) for t in chain.transitions if t.source != t.target]
+        if len(keys) > MAX_DRAWN_LINES:
+            exact = chain._analysis[1]  # the parsed positive entries (also of an invalid chain)
+            keys = heapq.nlargest(MAX_DRAWN_LINES, (k for k in keys if k in exact),
+                                  key=lambda k: exact[k].numerator / exact[k].denominator)
+        for a, b in keys:
+            pa, pb = pos.get(a), pos.get(b)
+            if pa is not None and pb is not None:
+                ov._lines[(a, b)] = (0, QLineF(pa, pb))
         ov.invalidate()
         for sid in self.states:
             self._arrange_node(sid)

@@ -365,3 +365,18 @@ def test_a_chain_of_many_transitions_is_drawn_as_plain_lines(window, qtbot, monk
     assert not canvas.lines_only and not canvas.notice.isVisible()
     assert sorted(canvas.arrows) == sorted((f"s{i}", f"s{(i + 1) % n}") for i in range(n))
     assert canvas._overview._lines.keys() <= set(canvas.arrows)  # no stale lines from the plain-line mode
+
+
+def test_plain_lines_are_the_most_probable_transitions_when_there_are_too_many(window, monkeypatch):
+    import app.canvas as cv
+
+    monkeypatch.setattr(cv, "MAX_DRAWN_ARROWS", 10)
+    monkeypatch.setattr(cv, "MAX_DRAWN_LINES", 4)
+    # row i puts 0.5 on i -> i+1 and spreads the rest thinly: those 5 are the most probable
+    n = 5
+    P = [[0.5 if j == (i + 1) % n else 0.5 / (n - 1) for j in range(n)] for i in range(n)]
+    window.document.reset(Chain.from_matrix(P, [f"s{i}" for i in range(n)]))
+    canvas = window.canvas
+    lines = set(canvas._overview._lines)
+    assert len(lines) == 4 and lines <= {(f"s{i}", f"s{(i + 1) % n}") for i in range(n)}
+    assert "the 4 most probable are shown as plain lines" in canvas.notice.text()
