@@ -5,6 +5,8 @@ tests replace them with recorders instead of blocking on a modal dialog.
 """
 from __future__ import annotations
 
+from pathlib import Path
+
 from typing import Sequence
 
 from PySide6.QtWidgets import QFileDialog, QMessageBox, QWidget
@@ -85,6 +87,19 @@ def open_path(parent: QWidget | None, title: str, folder: str, filter: str = CHA
 def save_path(parent: QWidget | None, title: str, suggested: str, filter: str = CHAIN_FILTER) -> str:
     path, _ = QFileDialog.getSaveFileName(parent, title, suggested, filter)
     return path
+
+
+def save_file(parent: QWidget | None, title: str, suggested: str, filter: str,
+              suffixes: tuple[str, ...]) -> Path | None:
+    """Ask where to save (:func:`save_path`); None when cancelled.
+
+    A name without one of ``suffixes`` (lower-case, with the dot) gets the first one appended.
+    """
+    path = save_path(parent, title, suggested, filter)
+    if not path:
+        return None
+    p = Path(path)
+    return p if p.suffix.lower() in suffixes else p.with_name(p.name + suffixes[0])
 
 
 def inform(parent: QWidget | None, title: str, text: str) -> None:

@@ -26,11 +26,9 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (
-    QFrame,
     QHBoxLayout,
     QHeaderView,
     QLabel,
-    QScrollArea,
     QSizePolicy,
     QTableWidget,
     QTableWidgetItem,
@@ -39,7 +37,7 @@ from PySide6.QtWidgets import (
 )
 
 from . import palette as pal
-from .panels import PanelSpec, Workspace, fact_rows
+from .panels import PanelSpec, Workspace, fact_rows, scroll_into, separator
 from .plan_form import PlanFields, fmt_p, preload_core, shared_plan, table_filling
 from .plot_export import ChartBox, nice_upper, state_ticks
 
@@ -247,19 +245,10 @@ class LongRunPanel(QWidget):
         lay.addWidget(_section("Times"))
         lay.addLayout(self.times)
         lay.addWidget(self.interval_note)
-        line = QFrame()
-        line.setFrameShape(QFrame.Shape.HLine)
-        line.setStyleSheet("color: #D5DADF;")
-        lay.addWidget(line)
+        lay.addWidget(separator())
         lay.addWidget(self.caution)
         lay.addStretch(1)
-        scroll = QScrollArea()
-        scroll.setWidgetResizable(True)
-        scroll.setFrameShape(QFrame.Shape.NoFrame)
-        scroll.setWidget(body)
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(0, 0, 0, 0)
-        outer.addWidget(scroll)
+        scroll_into(self, body)
 
         an = workspace.analysis
         an.resultReady.connect(self._on_result)

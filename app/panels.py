@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Callable
 
 from PySide6.QtCore import Qt
-from PySide6.QtWidgets import QFormLayout, QLabel, QWidget
+from PySide6.QtWidgets import QFormLayout, QFrame, QLabel, QScrollArea, QVBoxLayout, QWidget
 
 if TYPE_CHECKING:  # pragma: no cover
     from .analysis_service import AnalysisService
@@ -109,3 +109,22 @@ def fact_rows(items, *, prefix: str, vertical_spacing: int = 4) -> tuple[QFormLa
         labels[key] = lab
         form.addRow(caption, lab)
     return form, labels
+
+
+def separator() -> QFrame:
+    """The thin horizontal rule the panels put between their controls and their results."""
+    line = QFrame()
+    line.setFrameShape(QFrame.Shape.HLine)
+    line.setStyleSheet("color: #D5DADF;")
+    return line
+
+
+def scroll_into(panel: QWidget, body: QWidget) -> None:
+    """Make ``body`` the frameless, resizable, scrolling content of ``panel`` (no margins)."""
+    scroll = QScrollArea()
+    scroll.setWidgetResizable(True)
+    scroll.setFrameShape(QFrame.Shape.NoFrame)
+    scroll.setWidget(body)
+    outer = QVBoxLayout(panel)
+    outer.setContentsMargins(0, 0, 0, 0)
+    outer.addWidget(scroll)

@@ -38,14 +38,12 @@ from PySide6.QtWidgets import (
     QAbstractSpinBox,
     QComboBox,
     QDoubleSpinBox,
-    QFrame,
     QGridLayout,
     QHBoxLayout,
     QHeaderView,
     QLabel,
     QMenu,
     QPushButton,
-    QScrollArea,
     QSizePolicy,
     QTableWidget,
     QTableWidgetItem,
@@ -58,7 +56,7 @@ from core.errors import LongrunError
 from core.units import format_tv
 
 from . import palette as pal
-from .panels import PanelSpec, Workspace, fact_rows
+from .panels import PanelSpec, Workspace, fact_rows, scroll_into, separator
 from .simulation_worker import SIM_MAX_REPLICATES, SIM_MAX_STEPS, PlanValues, ResolvedPlan, resolve_plan
 
 __all__ = [
@@ -922,21 +920,12 @@ class PlanForm(JobPanel):
         lay.addLayout(head)
         lay.addWidget(self.sentence)
         lay.addLayout(buttons)
-        line = QFrame()
-        line.setFrameShape(QFrame.Shape.HLine)
-        line.setStyleSheet("color: #D5DADF;")
-        lay.addWidget(line)
+        lay.addWidget(separator())
         lay.addLayout(facts)
         lay.addWidget(self.table)
         lay.addWidget(self.chart)
         lay.addStretch(1)
-        scroll = QScrollArea()
-        scroll.setWidgetResizable(True)
-        scroll.setFrameShape(QFrame.Shape.NoFrame)
-        scroll.setWidget(body)
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(0, 0, 0, 0)
-        outer.addWidget(scroll)
+        scroll_into(self, body)
 
         self.run_plan.changed.connect(self._plan_changed)
         workspace.analysis.structureReady.connect(self._chain_ready)

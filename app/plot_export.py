@@ -396,13 +396,10 @@ class ChartBox(QWidget):
         """Ask for a file name and save the chart (PNG or SVG); problems are shown, never raised."""
         suffix = "." + kind
         suggested = str(Path.home() / (_plain_name(self._title) + suffix))
-        path = dialogs.save_path(self, f"Save the chart as {kind.upper()}", suggested,
-                                 PNG_FILTER if kind == "png" else SVG_FILTER)
-        if not path:
+        p = dialogs.save_file(self, f"Save the chart as {kind.upper()}", suggested,
+                              PNG_FILTER if kind == "png" else SVG_FILTER, (suffix,))
+        if p is None:
             return
-        p = Path(path)
-        if p.suffix.lower() != suffix:
-            p = p.with_name(p.name + suffix)
         try:
             self.save(p)
         except (OSError, ValueError, RuntimeError) as exc:

@@ -49,7 +49,6 @@ from PySide6.QtCore import QThread, Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QActionGroup
 from PySide6.QtWidgets import (
     QButtonGroup,
-    QFrame,
     QHBoxLayout,
     QLabel,
     QMenu,
@@ -66,7 +65,7 @@ from core.errors import LongrunError
 
 from . import palette as pal
 from .analysis_service import analysis_key
-from .panels import PanelSpec, Workspace
+from .panels import PanelSpec, Workspace, separator
 from .plan_form import PlanFields, fmt_tv, preload_core, shared_plan, verdict_badge
 from .simulation_worker import (PATH_LENGTH, PATHS, POOL, LiveFrame, PlanValues, RunRequest, RunSetup,
                                 ThreadControl, WorkerProcess, default_mode, run_loop)
@@ -490,10 +489,7 @@ class SimulationPanel(QWidget):
         lay.addWidget(self.progress)
         lay.addWidget(self.status)
         lay.addWidget(self.prediction)
-        line = QFrame()
-        line.setFrameShape(QFrame.Shape.HLine)
-        line.setStyleSheet("color: #D5DADF;")
-        lay.addWidget(line)
+        lay.addWidget(separator())
         lay.addWidget(split, 1)
         lay.addLayout(verdict_row)
         outer = QVBoxLayout(self)

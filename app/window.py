@@ -539,12 +539,9 @@ class MainWindow(QMainWindow):
     def file_save_as(self) -> bool:
         suggested = str(Path(self._folder()) / (self.document.path.name if self.document.path
                                                  else _safe_name(self.document.chain.name) + ".json"))
-        path = dialogs.save_path(self, "Save the chain as", suggested, dialogs.CHAIN_FILTER)
-        if not path:
+        p = dialogs.save_file(self, "Save the chain as", suggested, dialogs.CHAIN_FILTER, (".json",))
+        if p is None:
             return False
-        p = Path(path)
-        if p.suffix.lower() != ".json":
-            p = p.with_name(p.name + ".json")
         return self._save_to(p)
 
     def _save_to(self, path: Path) -> bool:
@@ -582,13 +579,10 @@ class MainWindow(QMainWindow):
         stem = self.document.path.stem if self.document.path else _safe_name(chain.name)
         suffix = ".json" if kind == "json" else ".csv"
         suggested = str(Path(self._folder()) / f"{stem}-validated{suffix}")
-        path = dialogs.save_path(self, "Export the validated matrix", suggested,
-                                 dialogs.JSON_FILTER if kind == "json" else dialogs.CSV_FILTER)
-        if not path:
+        p = dialogs.save_file(self, "Export the validated matrix", suggested,
+                              dialogs.JSON_FILTER if kind == "json" else dialogs.CSV_FILTER, (suffix,))
+        if p is None:
             return
-        p = Path(path)
-        if p.suffix.lower() != suffix:
-            p = p.with_name(p.name + suffix)
         from core.io import atomic_write_text, matrix_csv_text, write_validated_matrix
 
         try:
@@ -614,13 +608,11 @@ class MainWindow(QMainWindow):
 
         stem = self.document.path.stem if self.document.path else _safe_name(self.document.chain.name)
         suggested = str(Path(self._folder()) / f"{stem}-report.html")
-        path = dialogs.save_path(self, "Export the report", suggested,
-                                 "Report, HTML or PDF (*.html *.pdf);;HTML page (*.html);;PDF document (*.pdf)")
-        if not path:
+        p = dialogs.save_file(self, "Export the report", suggested,
+                              "Report, HTML or PDF (*.html *.pdf);;HTML page (*.html);;PDF document (*.pdf)",
+                              (".html", ".htm", ".pdf"))
+        if p is None:
             return False
-        p = Path(path)
-        if p.suffix.lower() not in (".html", ".htm", ".pdf"):
-            p = p.with_name(p.name + ".html")
         plan, epsilon = self.current_plan()
         QApplication.setOverrideCursor(Qt.CursorShape.WaitCursor)
         try:

@@ -113,6 +113,28 @@ def make_panels(qtbot):
 
 
 @pytest.fixture
+def full_window(qtbot, dialogs):
+    """The main window with every panel (the shared ``window`` fixture has the editor's panels only)."""
+    from app.main import create_application
+    from app.panels import PANEL_MODULES
+    from app.settings import Settings
+    from app.window import MainWindow
+
+    create_application()
+    w = MainWindow(Settings(), restore_layout=False, panels=PANEL_MODULES)
+    qtbot.addWidget(w)
+    w.resize(1400, 900)
+    w.show()
+    qtbot.waitExposed(w)
+    yield w
+    w.shutdown()
+    from app.plan_form import live_job_threads
+    from app.simulation_panel import live_simulation_threads
+
+    assert live_job_threads() == [] and live_simulation_threads() == []
+
+
+@pytest.fixture
 def dialogs():
     with pytest.MonkeyPatch.context() as monkeypatch:
         yield _recording_dialogs(monkeypatch)
