@@ -576,6 +576,11 @@ class OverviewEdges(QGraphicsItem):
     def invalidate(self) -> None:
         self._groups = None
 
+    def replace_all(self, lines: dict[tuple[str, str], tuple[int, QLineF]]) -> None:
+        """Hold exactly ``lines`` (key: (kind, line)), as the plain-line mode draws them."""
+        self._lines = dict(lines)
+        self._groups = None
+
     def set_line(self, key: tuple[str, str], kind: int, line: QLineF | None) -> None:
         """Record an arrow's line (kind 0 normal, 1 rare, 2 problem); None removes it."""
         if line is None:
@@ -798,8 +803,7 @@ class ChainCanvas(QGraphicsView):
         self.states.clear()
         self.arrows.clear()
         self._incident.clear()
-        self._overview._lines.clear()
-        self._overview.invalidate()
+        self._overview.replace_all({})
         chain = self.document.chain
         for s in chain.states:
             if s.id not in self.states:
@@ -838,19 +842,14 @@ class ChainCanvas(QGraphicsView):
 
     def _draw_lines(self, chain: Chain) -> None:
         """States, and every transition between two of them as one plain line (one batch)."""
-        ov = self._overview
-        ov._lines.clear()
         pos = {sid: item.pos() for sid, item in self.states.items()}
         keys = [(t.source, t.target) for t in chain.transitions if t.source != t.target]
         if len(keys) > MAX_DRAWN_LINES:
             exact = chain._analysis[1]  # the parsed positive entries (also of an invalid chain)
             keys = heapq.nlargest(MAX_DRAWN_LINES, (k for k in keys if k in exact),
                                   key=lambda k: exact[k].numerator / exact[k].denominator)
-        for a, b in keys:
-            pa, pb = pos.get(a), pos.get(b)
-            if pa is not None and pb is not None:
-                ov._lines[(a, b)] = (0, QLineF(pa, pb))
-        ov.invalidate()
+        self._overview.replace_all({(a, b): (0, QLineF(pos[a], pos[b])) for a, b in keys
+                                    if a in pos and b in pos})
         for sid in self.states:
             self._arrange_node(sid)
         self._apply_report_marks()

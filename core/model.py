@@ -580,24 +580,22 @@ def _validate(chain: Chain) -> tuple[tuple[Problem, ...], dict[tuple[str, str], 
             continue
         seen_t.add(key)
         dec = _as_decimal(t.p)
-        if dec is not None:
+        if dec is not None and 0 <= dec[0] <= _pow10(dec[1]):
+            # a decimal probability: kept and summed in integers (out-of-range ones go on below)
             m, d = dec  # the value is m / 10**d
-            if m < 0 or m > _pow10(d):
-                v = Fraction(m, _pow10(d))  # the problem is reported below, as for any value
+            if m:
+                values[key] = Fraction(m, _pow10(d))
+            acc = dec_sums.get(t.source)
+            if acc is None:
+                dec_sums[t.source] = [m, d]
+            elif d > acc[1]:
+                acc[0] = acc[0] * _pow10(d - acc[1]) + m
+                acc[1] = d
             else:
-                if m:
-                    values[key] = Fraction(m, _pow10(d))
-                acc = dec_sums.get(t.source)
-                if acc is None:
-                    dec_sums[t.source] = [m, d]
-                elif d > acc[1]:
-                    acc[0] = acc[0] * _pow10(d - acc[1]) + m
-                    acc[1] = d
-                else:
-                    acc[0] += m * _pow10(acc[1] - d)
-                continue
+                acc[0] += m * _pow10(acc[1] - d)
+            continue
         try:
-            v = parse_probability(t.p) if dec is None else v
+            v = parse_probability(t.p)
         except ValueError as exc:
             code = "not-finite" if "not a finite number" in str(exc) else "unparseable"
             problems.append(

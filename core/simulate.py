@@ -1972,8 +1972,8 @@ def _verdict(result, structure, ids, tolerance, exact, long_run, gof, tv_ens, ta
         else:
             findings.append(f"exactly, the kept draws average to a law at TV {tv_win:.3g} from the long-run law "
                             "(the start-up bias of this burn-in and run length).")
-    d_end = format_tv(curve[-1], zero="below 1e-12 (zero to rounding)")
-    findings.append(f"d_start(B+T) = TV(pi0 P^{total}, long-run law) {'is ' + d_end if d_end[0] == 'b' else '= ' + d_end}.")
+    d_end = "is below 1e-12 (zero to rounding)" if curve[-1] < TV_ROUNDING else f"= {curve[-1]:.3g}"
+    findings.append(f"d_start(B+T) = TV(pi0 P^{total}, long-run law) {d_end}.")
     # the verdict
     if gof.impossible or (np.isfinite(gof.pvalue) and gof.pvalue < ENGINE_ALPHA):
         why = ("replicates sit in states that pi0 P^t gives probability 0" if gof.impossible
